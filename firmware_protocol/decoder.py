@@ -1,0 +1,245 @@
+"""Incremental, resynchronising decoder of a spinrig byte stream (``SPEC.md`` section 3.4).
+
+``StreamDecoder.feed(chunk)`` takes bytes split anywhere and returns, in stream order, the decoded
+items: a :class:`GyroBatch` for each run of consecutive GYRO_BLOCK frames (numpy arrays, no
+per-sample Python work) and a :class:`Received` for every other message. It never raises on bad
+input, holds at most one partial frame (``MAX_ENCODED`` bytes), and counts every outcome in
+:class:`DecodeCounters`.
+"""
+
+from __future__ import annotations
+
+from binascii import crc_hqx
+from dataclasses import asdict, dataclass
+
+import numpy as np
+
+from . import stuffing
+from .constants import (
+    CRC_INIT,
+    GYRO_HEADER_BYTES,
+    HEADER_BYTES,
+    MAX_ENCODED,
+    MIN_BODY,
+    MessageType,
+)
+from .messages import DECODERS, GyroBlock, MalformedPayload, Message
+
+_GYRO = int(MessageType.GYRO_BLOCK)
+_GYRO_FIXED = HEADER_BYTES + GYRO_HEADER_BYTES + 2  # body bytes besides the samples: 13
+_COUNT_AT = HEADER_BYTES + 8  # body offset of GYRO_BLOCK.count
+
+
+@dataclass
+class DecodeCounters:
+    """Every outcome of decoding, since the decoder was made (all plain ints)."""
+
+    bytes_in: int = 0  #: bytes fed
+    frames_ok: int = 0  #: frames that passed COBS, CRC and the payload checks
+    crc_errors: int = 0
+    malformed: int = 0  #: bad COBS, too short, or a payload that breaks its layout
+    oversize: int = 0  #: frames longer than MAX_ENCODED before their delimiter
+    unknown_type: int = 0  #: valid frames of a type this decoder does not know (skipped)
+    bytes_skipped: int = 0  #: bytes of discarded frames and garbage, delimiters included
+    frames_lost: int = 0  #: gaps in the frame seq counter between valid frames
+    gyro_blocks: int = 0
+    gyro_samples: int = 0
+
+    def as_dict(self) -> dict[str, int]:
+        return asdict(self)
+
+    @property
+    def bad_frames(self) -> int:
+        return self.crc_errors + self.malformed + self.oversize
+
+
+@dataclass(frozen=True, slots=True)
+class Received:
+    """One decoded non-gyro message with the frame seq it came in."""
+
+    seq: int
+    message: Message
+
+
+@dataclass(frozen=True, slots=True, eq=False)
+class GyroBatch:
+    """A run of consecutive GYRO_BLOCK frames, as arrays.
+
+    ``sample_seq``, ``t_us`` and ``counts`` have one entry per block (uint32, uint32, int64);
+    ``samples`` is int16 of shape (sum(counts), 3), roll/pitch/yaw in counts.
+    """
+
+    sample_seq: np.ndarray
+    t_us: np.ndarray
+    counts: np.ndarray
+    samples: np.ndarray
+
+    def dps(self, dps_per_count: float) -> np.ndarray:
+        """Samples in deg/s, float32, shape (n, 3)."""
+        return self.samples.astype(np.float32) * np.float32(dps_per_count)
+
+    def blocks(self) -> list[GyroBlock]:
+        """The batch as individual GyroBlock messages (for tests and tools, not the hot path)."""
+        out = []
+        start = 0
+        for seq, t, n in zip(self.sample_seq.tolist(), self.t_us.tolist(), self.counts.tolist(), strict=True):
+            out.append(GyroBlock(seq, t, self.samples[start : start + n]))
+            start += n
+        return out
+
+    @staticmethod
+    def concatenate(batches: list[GyroBatch]) -> GyroBatch:
+        if len(batches) == 1:
+            return batches[0]
+        return GyroBatch(
+            np.concatenate([b.sample_seq for b in batches]),
+            np.concatenate([b.t_us for b in batches]),
+            np.concatenate([b.counts for b in batches]),
+            np.concatenate([b.samples for b in batches]),
+        )
+
+
+def _equal_length_run(bodies: list[bytes], length: int) -> GyroBatch:
+    k = len(bodies)
+    arr = np.frombuffer(b"".join(bodies), dtype=np.uint8).reshape(k, length)
+    seq = np.ascontiguousarray(arr[:, 2:6]).view("<u4").reshape(k)
+    t_us = np.ascontiguousarray(arr[:, 6:10]).view("<u4").reshape(k)
+    counts = np.full(k, (length - _GYRO_FIXED) // 6, dtype=np.int64)
+    samples = np.ascontiguousarray(arr[:, _COUNT_AT + 1 : length - 2]).view("<i2").reshape(-1, 3)
+    return GyroBatch(seq, t_us, counts, samples)
+
+
+def gyro_batch_from_bodies(bodies: list[bytes]) -> GyroBatch:
+    """Arrays of checked GYRO_BLOCK bodies (type, seq, payload, CRC), in order."""
+    lengths = [len(b) for b in bodies]
+    first = lengths[0]
+    if lengths.count(first) == len(lengths):
+        return _equal_length_run(bodies, first)
+    runs = []
+    start = 0
+    for i in range(1, len(bodies) + 1):
+        if i == len(bodies) or lengths[i] != lengths[start]:
+            runs.append(_equal_length_run(bodies[start:i], lengths[start]))
+            start = i
+    return GyroBatch.concatenate(runs)
+
+
+class StreamDecoder:
+    """Bytes in, typed messages out; see the module docstring.
+
+    Parameters
+    ----------
+    known_types:
+        Type codes to decode; others count as ``unknown_type``. Defaults to every v1 type.
+    """
+
+    def __init__(self, known_types: set[int] | None = None):
+        self.counters = DecodeCounters()
+        self._tail = b""
+        self._discarding = False
+        self._last_seq = -1
+        self._decoders = {t: f for t, f in DECODERS.items() if known_types is None or t in known_types}
+
+    @property
+    def buffered(self) -> int:
+        """Bytes held waiting for a delimiter (never more than MAX_ENCODED)."""
+        return len(self._tail)
+
+    def reset(self) -> None:
+        """Forget any partial frame and the frame-seq history (after a reconnect)."""
+        self._tail = b""
+        self._discarding = False
+        self._last_seq = -1
+
+    def feed(self, data: bytes) -> list[GyroBatch | Received]:
+        c = self.counters
+        c.bytes_in += len(data)
+        buf = self._tail + bytes(data) if self._tail else bytes(data)
+        parts = buf.split(b"\x00")
+        tail = parts.pop()
+        if self._discarding:
+            if parts:  # the oversize frame ends at the first delimiter of this chunk
+                c.bytes_skipped += len(parts[0]) + 1
+                parts[0] = b""
+                self._discarding = False
+            else:
+                c.bytes_skipped += len(tail)
+                tail = b""
+        if len(tail) > MAX_ENCODED:
+            c.oversize += 1
+            c.bytes_skipped += len(tail)
+            tail = b""
+            self._discarding = True
+        self._tail = tail
+
+        out: list[GyroBatch | Received] = []
+        gyro: list[bytes] = []
+        decode = stuffing.decode
+        decode_error = stuffing.DecodeError
+        decoders = self._decoders
+        last_seq = self._last_seq
+        lost = 0
+        ok = 0
+        for p in parts:
+            if not p:
+                continue  # idle delimiter
+            n = len(p)
+            if n > MAX_ENCODED:
+                c.oversize += 1
+                c.bytes_skipped += n + 1
+                continue
+            try:
+                body = decode(p)
+            except decode_error:
+                c.malformed += 1
+                c.bytes_skipped += n + 1
+                continue
+            blen = len(body)
+            if blen < MIN_BODY:
+                c.malformed += 1
+                c.bytes_skipped += n + 1
+                continue
+            if crc_hqx(body, CRC_INIT):
+                c.crc_errors += 1
+                c.bytes_skipped += n + 1
+                continue
+            t = body[0]
+            if t == _GYRO:
+                count = body[_COUNT_AT] if blen > _COUNT_AT else 0
+                if count == 0 or blen != _GYRO_FIXED + 6 * count:
+                    c.malformed += 1
+                    c.bytes_skipped += n + 1
+                    continue
+                gyro.append(body)
+            else:
+                dec = decoders.get(t)
+                if dec is None:
+                    c.unknown_type += 1
+                    continue
+                try:
+                    msg = dec(body[HEADER_BYTES:-2])
+                except (MalformedPayload, ValueError, UnicodeError):
+                    c.malformed += 1
+                    c.bytes_skipped += n + 1
+                    continue
+                if gyro:
+                    out.append(self._flush(gyro))
+                    gyro = []
+                out.append(Received(body[1], msg))
+            s = body[1]
+            if last_seq >= 0:
+                lost += (s - last_seq - 1) & 0xFF
+            last_seq = s
+            ok += 1
+        if gyro:
+            out.append(self._flush(gyro))
+        self._last_seq = last_seq
+        c.frames_lost += lost
+        c.frames_ok += ok
+        return out
+
+    def _flush(self, bodies: list[bytes]) -> GyroBatch:
+        batch = gyro_batch_from_bodies(bodies)
+        self.counters.gyro_blocks += len(bodies)
+        self.counters.gyro_samples += batch.samples.shape[0]
+        return batch
