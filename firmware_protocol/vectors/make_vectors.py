@@ -30,8 +30,8 @@ from firmware_protocol import (
     encode_frame,
     encode_raw,
     frame_body,
+    stuffing,
 )
-from firmware_protocol import stuffing
 from firmware_protocol.messages import TYPE_OF
 
 HERE = Path(__file__).resolve().parent
