@@ -1,0 +1,51 @@
+"""The command line: help, ports listing, demo."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from types import SimpleNamespace
+
+import pytest
+
+from monitor import cli, ports
+
+
+def test_help_lists_commands_and_safety(capsys):
+    with pytest.raises(SystemExit) as exc:
+        cli.main(["--help"])
+    assert exc.value.code == 0
+    out = capsys.readouterr().out
+    for word in ("demo", "ports", "kill switch", "prop arc"):
+        assert word in out
+
+
+def test_no_command_prints_help_and_exits_2(capsys):
+    assert cli.main([]) == 2
+    assert "usage: spinrig" in capsys.readouterr().out
+
+
+def _port(device, description, vid=None, pid=None, serial_number=None):
+    return SimpleNamespace(device=device, description=description, vid=vid, pid=pid, serial_number=serial_number)
+
+
+def test_ports_lists_description_and_vid_pid(monkeypatch, capsys):
+    fake = [_port("/dev/ttyACM0", "Bench FC", 0x0483, 0x5740, "A1B2"), _port("/dev/ttyS0", "n/a")]
+    monkeypatch.setattr(ports.list_ports, "comports", lambda: fake)
+    assert cli.main(["ports"]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert lines == ["/dev/ttyACM0  Bench FC  USB 0483:5740  serial A1B2", "/dev/ttyS0  no description"]
+
+
+def test_ports_says_plainly_when_none(monkeypatch, capsys):
+    monkeypatch.setattr(ports.list_ports, "comports", lambda: [])
+    assert cli.main(["ports"]) == 0
+    assert capsys.readouterr().out.startswith("no serial ports found")
+
+
+def test_demo_runs_and_exits_0():
+    proc = subprocess.run(
+        [sys.executable, "-m", "monitor", "demo", "--seconds", "0.5"], capture_output=True, text=True, timeout=60
+    )
+    assert proc.returncode == 0, proc.stderr
+    assert "frames ok=" in proc.stdout and "Traceback" not in proc.stderr
