@@ -5,6 +5,8 @@ This package imports nothing from ``monitor`` or ``simulators``.
 """
 
 from .constants import (
+    ERROR_BURST_FRAMES,
+    ERROR_BURST_WINDOW_MS,
     MAX_ENCODED,
     MAX_GYRO_BATCH,
     MAX_MOTORS,
@@ -45,6 +47,7 @@ from .messages import (
 )
 
 __all__ = [
+    "ERROR_BURST_FRAMES", "ERROR_BURST_WINDOW_MS",
     "MAX_ENCODED", "MAX_GYRO_BATCH", "MAX_MOTORS", "MAX_PAYLOAD", "PROTOCOL_VERSION", "THROTTLE_FULL",
     "AckResult", "AxisConvention", "BenchState", "Fault", "FilterFlags", "LogLevel", "MessageType",
     "MotorFlags", "StopReason", "DecodeCounters", "GyroBatch", "Received", "StreamDecoder", "FrameError",

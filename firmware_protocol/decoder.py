@@ -10,6 +10,7 @@ input, holds at most one partial frame (``MAX_ENCODED`` bytes), and counts every
 from __future__ import annotations
 
 from binascii import crc_hqx
+from collections import deque
 from dataclasses import asdict, dataclass
 
 import numpy as np
@@ -139,6 +140,9 @@ class StreamDecoder:
         self._discarding = False
         self._last_seq = -1
         self._decoders = {t: f for t, f in DECODERS.items() if known_types is None or t in known_types}
+        #: (type, seq, reason) of recent frames with a valid CRC but a bad payload, newest last;
+        #: a device answers these with COMMAND_ACK MALFORMED. Bounded; the consumer may clear it.
+        self.rejected_payloads: deque[tuple[int, int, str]] = deque(maxlen=64)
 
     @property
     def buffered(self) -> int:
@@ -209,6 +213,7 @@ class StreamDecoder:
                 if count == 0 or blen != _GYRO_FIXED + 6 * count:
                     c.malformed += 1
                     c.bytes_skipped += n + 1
+                    self.rejected_payloads.append((t, body[1], f"GYRO_BLOCK.count={count} in {blen - 4} bytes"))
                     continue
                 gyro.append(body)
             else:
@@ -218,9 +223,10 @@ class StreamDecoder:
                     continue
                 try:
                     msg = dec(body[HEADER_BYTES:-2])
-                except (MalformedPayload, ValueError, UnicodeError):
+                except (MalformedPayload, ValueError, UnicodeError) as exc:
                     c.malformed += 1
                     c.bytes_skipped += n + 1
+                    self.rejected_payloads.append((t, body[1], str(exc)))
                     continue
                 if gyro:
                     out.append(self._flush(gyro))

@@ -11,6 +11,7 @@ EPILOG = """\
 examples:
   spinrig demo                 see the whole idea on a simulated airframe
   spinrig ports                list serial ports
+  spinrig sim quillback7       a simulated flight controller on a pty
 
 Bench safety: props off or the frame clamped, eye protection, stay clear of the prop arc,
 a current-limited supply and a physical kill switch within reach.
@@ -40,6 +41,21 @@ def _add_ports(sub) -> None:
     p.set_defaults(func=lambda a: __import__("monitor.ports", fromlist=["run"]).run(a))
 
 
+def _add_sim(sub) -> None:
+    from simulators import cli as sim_cli
+
+    p = sub.add_parser(
+        "sim",
+        help="run a simulated flight controller on a pty or TCP port",
+        description="Run a simulated flight controller on a simulated airframe, speaking the spinrig protocol "
+        "over a pseudo-terminal or a TCP port, until stopped.",
+        epilog=sim_cli.EXAMPLES,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    sim_cli.add_arguments(p)
+    p.set_defaults(func=sim_cli.run)
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="spinrig",
@@ -51,6 +67,7 @@ def build_parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     _add_demo(sub)
     _add_ports(sub)
+    _add_sim(sub)
     return parser
 
 

@@ -1,0 +1,165 @@
+"""Transports that carry a :class:`~simulators.stream.SimStream` to a host: a pty and a TCP server.
+
+- pty: ``os.openpty()``; the slave path (``/dev/pts/N``) opens with ``serial.Serial`` like a
+  real port. The slave is put in raw mode at once so no byte is echoed or translated.
+- TCP: one client at a time on ``socket://HOST:PORT``; a ``disconnect`` fault closes the client
+  and refuses connections for its duration.
+
+Both loops block in ``select`` with a short timeout (no busy loop), release bytes by the wall
+clock (real time) or as fast as the consumer reads (fast), and stop at ``duration`` or when
+``stop`` is set.
+"""
+
+from __future__ import annotations
+
+import os
+import select
+import socket
+import threading
+import time
+import tty
+from collections.abc import Callable
+
+from .stream import SimStream
+
+POLL_S = 0.002
+FAST_BACKLOG = 64 * 1024  #: fast mode produces more only below this much unsent data
+REALTIME_BACKLOG = 256 * 1024  #: real time with nobody reading: older bytes are dropped past this
+
+
+class Stats:
+    def __init__(self):
+        self.bytes_written = 0
+        self.bytes_read = 0
+        self.bytes_dropped = 0  # nobody was reading (pty with no listener)
+        self.connections = 0
+
+
+def _produce(stream: SimStream, fast: bool, t0: float, pending: bytearray) -> None:
+    if fast:
+        if len(pending) < FAST_BACKLOG:
+            pending += stream.produce_chunk()
+    else:
+        pending += stream.produce(time.monotonic() - t0)
+
+
+def serve_pty(
+    stream: SimStream,
+    on_ready: Callable[[str], None],
+    duration: float | None = None,
+    stop: threading.Event | None = None,
+) -> Stats:
+    """Run the stream on a new pty until ``duration`` s (simulated) or ``stop``; returns counts."""
+    master, slave = os.openpty()
+    tty.setraw(slave)
+    os.set_blocking(master, False)
+    path = os.ttyname(slave)
+    stats = Stats()
+    fast = not stream.options.realtime
+    on_ready(path)
+    pending = bytearray()
+    t0 = time.monotonic()
+    try:
+        while not (stop and stop.is_set()) and (duration is None or stream.time_s < duration):
+            _produce(stream, fast, t0, pending)
+            if not fast and len(pending) > REALTIME_BACKLOG:
+                cut = len(pending) - REALTIME_BACKLOG
+                del pending[:cut]
+                stats.bytes_dropped += cut
+            r, w, _ = select.select([master], [master] if pending else [], [], POLL_S)
+            if r:
+                try:
+                    data = os.read(master, 4096)
+                except OSError:
+                    data = b""
+                if data:
+                    stats.bytes_read += len(data)
+                    stream.receive(data)
+            if w:
+                try:
+                    n = os.write(master, pending[:4096])
+                except BlockingIOError:
+                    n = 0
+                except OSError:
+                    n = 0
+                stats.bytes_written += n
+                del pending[:n]
+    finally:
+        os.close(master)
+        os.close(slave)
+    return stats
+
+
+def serve_tcp(
+    stream: SimStream,
+    port: int,
+    on_ready: Callable[[str], None],
+    host: str = "127.0.0.1",
+    duration: float | None = None,
+    stop: threading.Event | None = None,
+) -> Stats:
+    """Serve the stream to one TCP client at a time at ``host:port`` (0 picks a free port)."""
+    srv = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+    srv.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+    srv.bind((host, port))
+    srv.listen(1)
+    srv.setblocking(False)
+    stats = Stats()
+    fast = not stream.options.realtime
+    on_ready(f"socket://{host}:{srv.getsockname()[1]}")
+    client: socket.socket | None = None
+    pending = bytearray()
+    t0 = time.monotonic()
+    try:
+        while not (stop and stop.is_set()) and (duration is None or stream.time_s < duration):
+            now_s = stream.time_s if fast else time.monotonic() - t0
+            down = stream.disconnected(now_s)
+            if down and client is not None:
+                client.close()
+                client = None
+                pending.clear()
+            if client is None:
+                if fast and down:
+                    stream.produce(now_s + 0.02)  # the device runs on while the link is down
+                    continue
+                if not fast:
+                    stream.produce(time.monotonic() - t0)  # keep simulated time with the clock
+                r, _, _ = select.select([srv], [], [], POLL_S * 5)
+                if r:
+                    conn, _ = srv.accept()
+                    if down:
+                        conn.close()
+                        continue
+                    conn.setblocking(False)
+                    conn.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+                    client = conn
+                    stats.connections += 1
+                    pending.clear()
+                continue
+            _produce(stream, fast, t0, pending)
+            if not fast and len(pending) > REALTIME_BACKLOG:
+                cut = len(pending) - REALTIME_BACKLOG
+                del pending[:cut]
+                stats.bytes_dropped += cut
+            r, w, _ = select.select([client], [client] if pending else [], [], POLL_S)
+            try:
+                if r:
+                    data = client.recv(4096)
+                    if not data:
+                        raise ConnectionResetError
+                    stats.bytes_read += len(data)
+                    stream.receive(data)
+                if w:
+                    n = client.send(pending[:65536])
+                    stats.bytes_written += n
+                    del pending[:n]
+            except (BlockingIOError, InterruptedError):
+                pass
+            except OSError:
+                client.close()
+                client = None
+    finally:
+        if client is not None:
+            client.close()
+        srv.close()
+    return stats

@@ -1,0 +1,1 @@
+"""pyserial URL handlers of spinrig's simulators (``sim://``); see :func:`simulators.register`."""
