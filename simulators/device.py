@@ -31,6 +31,8 @@ class DeviceOptions:
     drift_ppm: float = 0.0  #: device clock runs fast by this many parts per million
     clock_start_us: int = 0  #: device clock at boot (set near 2**32 to test the wrap)
     chunk_periods: int = 4  #: control periods simulated per step
+    #: internal physics rate floor; lower it only for long protocol soak tests (less accurate modes)
+    min_internal_hz: float = 32_000.0
 
 
 HOST_TYPES = set(HOST_TO_DEVICE_RANGE) | {fp.MessageType.SIM_TAP}
@@ -44,7 +46,7 @@ class SimDevice:
         self.scenario = scenario
         self.options = options or DeviceOptions()
         self.rng = np.random.default_rng(self.options.seed + 1_000_003)
-        self.physics = BenchPhysics(scenario, seed=self.options.seed)
+        self.physics = BenchPhysics(scenario, seed=self.options.seed, min_internal_hz=self.options.min_internal_hz)
         for tap in scenario.taps:
             self.physics.tap(tap.target, tap.strength, at_s=tap.at_s)
         g = scenario.gyro

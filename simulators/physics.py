@@ -21,11 +21,11 @@ MIN_INTERNAL_HZ = 32_000.0
 
 
 class BenchPhysics:
-    def __init__(self, scenario: Scenario, seed: int = 0):
+    def __init__(self, scenario: Scenario, seed: int = 0, min_internal_hz: float = MIN_INTERNAL_HZ):
         self.scenario = scenario
         self.rng = np.random.default_rng(seed)
         odr = scenario.gyro.rate_hz
-        self.decimation = max(1, math.ceil(MIN_INTERNAL_HZ / odr))
+        self.decimation = max(1, math.ceil(min_internal_hz / odr))
         self.fs_internal = odr * self.decimation
         self.dt = 1.0 / self.fs_internal
         self.frame = ModalFrame(scenario.modes, self.fs_internal)

@@ -233,7 +233,8 @@ def parse_scenario(data: dict, src: str = "<memory>", name: str = "scenario") ->
             "slew_per_s": (1, 1e7, False), "supply_mv": (0, 65535, True), "control_period_s": (0.0005, 0.05, False),
         },
     )
-    if "board_id" in d and (not isinstance(d["board_id"], str) or len(d["board_id"]) > 32 or not d["board_id"].isascii()):
+    bid = d.get("board_id", "")
+    if not isinstance(bid, str) or len(bid) > 32 or not bid.isascii():
         raise _err(src, "device.board_id", "must be ASCII text of at most 32 characters")
     device = DeviceSpec(**d)
 

@@ -48,6 +48,7 @@ class SimStream:
         self.uart_dropped = 0
         self.bytes_out = 0
         self.bytes_discarded = 0  #: produced while the link was down
+        self.frames_released = 0  #: frames put on the link (before byte faults)
 
     @property
     def time_s(self) -> float:
@@ -84,6 +85,7 @@ class SimStream:
                 self.bytes_discarded += len(frame)
                 continue
             parts.append(frame)
+        self.frames_released += len(parts)
         dt = max(0.0, until_s - self._released_s)
         self._released_s = max(self._released_s, until_s)
         data = self.mangler.apply(b"".join(parts), dt)
