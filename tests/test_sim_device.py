@@ -124,7 +124,9 @@ def test_protocol_error_burst_stops_motors():
 
 commands = st.one_of(
     st.builds(lambda n: ("arm", n), st.sampled_from([1, 2])),
-    st.builds(lambda n, t: ("thr", n, t), st.sampled_from([1, 2]), st.lists(st.integers(0, 10000), min_size=4, max_size=4)),
+    st.builds(
+        lambda n, t: ("thr", n, t), st.sampled_from([1, 2]), st.lists(st.integers(0, 10000), min_size=4, max_size=4)
+    ),
     st.builds(lambda n: ("hb", n), st.sampled_from([0, 1, 2])),
     st.just(("stop",)),
     st.builds(lambda b: ("junk", b), st.binary(min_size=1, max_size=40)),
@@ -211,8 +213,8 @@ def test_an_hour_of_stream_decodes_without_error():
     sc = replace(sc, gyro=replace(sc.gyro, rate_hz=1000, antialias_hz=300, block=40),
                  modes=sc.modes[:1], device=replace(sc.device, motor_state_rate_hz=50, control_period_s=0.005))
     clock0 = 2**32 - 1_800_000_000  # wraps after 30 min
-    stream = SimStream(sc, DeviceOptions(stream_at_boot=True, chunk_periods=40, min_internal_hz=4000, clock_start_us=clock0),
-                       FaultPlan(), StreamOptions(realtime=False))
+    opts = DeviceOptions(stream_at_boot=True, chunk_periods=40, min_internal_hz=4000, clock_start_us=clock0)
+    stream = SimStream(sc, opts, FaultPlan(), StreamOptions(realtime=False))
     dec = fp.StreamDecoder()
     expect_seq = 0
     last_t = None
