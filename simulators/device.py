@@ -60,8 +60,8 @@ class SimDevice:
         self.boots = 0
         self.frames_sent = 0
         self.host_commands_seen = 0
-        self._next_motor_s = 0.0
-        self._next_status_s = 0.0
+        self._motor_k = 0  # index of the next MOTOR_STATE (times are k / rate: no float drift)
+        self._status_k = 0
         self._pending: list[np.ndarray] = []
         self._pending_n = 0
         self._applied = np.zeros(scenario.motors.count)  # throttle driven now, 0.01 %
@@ -251,18 +251,17 @@ class SimDevice:
 
     def _motor_states(self, t0: float, n: int, rpm: np.ndarray, seg: np.ndarray) -> None:
         s = self.scenario
-        period = 1.0 / s.device.motor_state_rate_hz
+        rate = s.device.motor_state_rate_hz
         t_end = t0 + n / self.odr
-        if self._next_motor_s < t0:
-            self._next_motor_s = t0
+        self._motor_k = max(self._motor_k, int(np.ceil(t0 * rate - 1e-9)))
         count = s.motors.count
         entry = struct.Struct("<IB" + "IHB" * count)
         flags = int(fp.MotorFlags.TELEMETRY_VALID) if s.motors.telemetry else 0
         erpm_scale = s.motors.pole_pairs if s.motors.telemetry else 0
         times = []
-        while self._next_motor_s < t_end:
-            times.append(self._next_motor_s)
-            self._next_motor_s += period
+        while self._motor_k / rate < t_end - 1e-12:
+            times.append(self._motor_k / rate)
+            self._motor_k += 1
         if not times:
             return
         idx = np.minimum(n - 1, ((np.array(times) - t0) * self.odr).astype(int))
@@ -277,10 +276,11 @@ class SimDevice:
     def _status(self, t0: float, n: int, seg: np.ndarray) -> None:
         s = self.scenario
         t_end = t0 + n / self.odr
-        if self._next_status_s < t0:
-            self._next_status_s = t0
-        while self._next_status_s < t_end:
-            t = self._next_status_s
+        rate = s.device.status_rate_hz
+        self._status_k = max(self._status_k, int(np.ceil(t0 * rate - 1e-9)))
+        while self._status_k / rate < t_end - 1e-12:
+            t = self._status_k / rate
+            self._status_k += 1
             thr = float(np.mean(seg)) / 10000.0
             amps = 0.4 + 45.0 * thr**1.5
             c = self.decoder.counters
@@ -298,7 +298,6 @@ class SimDevice:
                 ),
                 at_s=t,
             )
-            self._next_status_s += 1.0 / s.device.status_rate_hz
 
     @property
     def applied_throttle(self) -> np.ndarray:

@@ -99,16 +99,18 @@ class SimStream:
         return self.produce(self.next_release_s() + self.device.control_period_s * self.device.options.chunk_periods)
 
     def _uart(self, data: bytes, dt: float) -> bytes:
-        room = self.options.fifo_bytes - len(self._fifo)
-        if len(data) > room:
-            self.uart_dropped += len(data) - max(room, 0)
-            data = data[: max(room, 0)]
+        """A UART sending ``baud / 10`` bytes a second from a FIFO of ``fifo_bytes``: what does not
+        fit once the link has drained its share of ``dt`` is dropped, newest bytes first."""
         self._fifo += data
-        self._tokens = min(self._tokens + dt * self.options.baud / 10.0, float(self.options.fifo_bytes))
-        n = min(len(self._fifo), int(self._tokens))
-        self._tokens -= n
+        capacity = dt * self.options.baud / 10.0 + self._tokens
+        n = min(len(self._fifo), int(capacity))
+        self._tokens = capacity - n if len(self._fifo) > n else 0.0  # an idle line saves nothing up
         out = bytes(self._fifo[:n])
         del self._fifo[:n]
+        excess = len(self._fifo) - self.options.fifo_bytes
+        if excess > 0:
+            self.uart_dropped += excess
+            del self._fifo[-excess:]
         return out
 
     def receive(self, data: bytes) -> None:
