@@ -30,7 +30,8 @@ class DeviceOptions:
     script: bool = True  #: spin the scenario's throttle script while no host has armed
     drift_ppm: float = 0.0  #: device clock runs fast by this many parts per million
     clock_start_us: int = 0  #: device clock at boot (set near 2**32 to test the wrap)
-    chunk_periods: int = 4  #: control periods simulated per step
+    #: control periods simulated per step: host commands take effect at chunk boundaries (40 ms)
+    chunk_periods: int = 8
     #: internal physics rate floor; lower it only for long protocol soak tests (less accurate modes)
     min_internal_hz: float = 32_000.0
 

@@ -6,8 +6,9 @@
   and refuses connections for its duration.
 
 Both loops block in ``select`` with a short timeout (no busy loop), release bytes by the wall
-clock (real time) or as fast as the consumer reads (fast), and stop at ``duration`` or when
-``stop`` is set.
+clock (real time) or as fast as the consumer reads (fast; the device then waits for the host's
+first bytes, since a TCP client's pyserial discards what arrives during its connect), and stop
+at ``duration`` or when ``stop`` is set.
 """
 
 from __future__ import annotations
@@ -22,7 +23,7 @@ from collections.abc import Callable
 
 from .stream import SimStream
 
-POLL_S = 0.002
+POLL_S = 0.004  #: bytes go out at least every 4 ms (a real device's USB CDC frames are 1 ms)
 FAST_BACKLOG = 64 * 1024  #: fast mode produces more only below this much unsent data
 REALTIME_BACKLOG = 256 * 1024  #: real time with nobody reading: older bytes are dropped past this
 
@@ -35,9 +36,10 @@ class Stats:
         self.connections = 0
 
 
-def _produce(stream: SimStream, fast: bool, t0: float, pending: bytearray) -> None:
+def _produce(stream: SimStream, fast: bool, t0: float, pending: bytearray, heard: bool = True) -> None:
     if fast:
-        if len(pending) < FAST_BACKLOG:
+        # fast mode waits for the host's first bytes: nothing is produced for nobody
+        if heard and len(pending) < FAST_BACKLOG:
             pending += stream.produce_chunk()
     else:
         pending += stream.produce(time.monotonic() - t0)
@@ -61,7 +63,7 @@ def serve_pty(
     t0 = time.monotonic()
     try:
         while not (stop and stop.is_set()) and (duration is None or stream.time_s < duration):
-            _produce(stream, fast, t0, pending)
+            _produce(stream, fast, t0, pending, heard=stats.bytes_read > 0)
             if not fast and len(pending) > REALTIME_BACKLOG:
                 cut = len(pending) - REALTIME_BACKLOG
                 del pending[:cut]
@@ -77,7 +79,7 @@ def serve_pty(
                     stream.receive(data)
             if w:
                 try:
-                    n = os.write(master, pending[:4096])
+                    n = os.write(master, pending[:65536])
                 except BlockingIOError:
                     n = 0
                 except OSError:
@@ -136,7 +138,7 @@ def serve_tcp(
                     stats.connections += 1
                     pending.clear()
                 continue
-            _produce(stream, fast, t0, pending)
+            _produce(stream, fast, t0, pending, heard=stats.bytes_read > 0)
             if not fast and len(pending) > REALTIME_BACKLOG:
                 cut = len(pending) - REALTIME_BACKLOG
                 del pending[:cut]

@@ -49,3 +49,46 @@ def test_demo_runs_and_exits_0():
     )
     assert proc.returncode == 0, proc.stderr
     assert "frames ok=" in proc.stdout and "Traceback" not in proc.stderr
+
+
+def _spawn_sim(*args):
+    return subprocess.Popen(
+        [sys.executable, "-m", "monitor", "sim", *args], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True
+    )
+
+
+SCENARIOS = __import__("simulators.scenario", fromlist=["list_scenarios"]).list_scenarios()
+
+
+@pytest.mark.parametrize("name", SCENARIOS)
+@pytest.mark.parametrize("where", ["pty", "tcp"])
+def test_spinrig_sim_serves_each_scenario(name, where):
+    import serial
+
+    import firmware_protocol as fp
+
+    extra = ["--tcp", "0"] if where == "tcp" else ["--pty"]
+    proc = _spawn_sim(name, "--fast", "--duration", "60", *extra)
+    try:
+        assert "spinrig sim:" in proc.stdout.readline()
+        url = proc.stdout.readline().strip()
+        port = serial.Serial(url, timeout=0.2) if where == "pty" else serial.serial_for_url(url, timeout=0.2)
+        port.write(fp.encode_frame(fp.RequestInfo(), 0) + fp.encode_frame(fp.StreamControl(1), 1))
+        dec = fp.StreamDecoder()
+        for _ in range(500):  # bounded: about 5 s of stream are read within a few hundred reads
+            dec.feed(port.read(4096))
+            if dec.counters.gyro_samples >= 20_000:
+                break
+        port.close()
+        assert proc.poll() is None  # still serving: we stop it
+    finally:
+        proc.kill()
+        proc.wait()
+    assert dec.counters.gyro_samples >= 20_000 and dec.counters.bad_frames == 0 and dec.counters.frames_lost == 0
+
+
+def test_spinrig_sim_rejects_a_bad_fault_in_one_line():
+    proc = _spawn_sim("quillback7", "--fault", "melt=1")
+    out, err = proc.communicate(timeout=60)
+    assert proc.returncode == 2
+    assert err.strip().count("\n") == 0 and "fault 'melt=1'" in err and "Traceback" not in err

@@ -26,10 +26,11 @@ START = fp.encode_frame(fp.RequestInfo(), 0) + fp.encode_frame(fp.StreamControl(
 def _serve(kind, stream, duration):
     ready: queue.Queue[str] = queue.Queue()
     stop = threading.Event()
+    kw = {"duration": duration, "stop": stop}
     if kind == "pty":
-        th = threading.Thread(target=serve_pty, args=(stream, ready.put), kwargs={"duration": duration, "stop": stop})
+        th = threading.Thread(target=serve_pty, args=(stream, ready.put), kwargs=kw)
     else:
-        th = threading.Thread(target=serve_tcp, args=(stream, 0, ready.put), kwargs={"duration": duration, "stop": stop})
+        th = threading.Thread(target=serve_tcp, args=(stream, 0, ready.put), kwargs=kw)
     th.start()
     return ready.get(timeout=10), stop, th
 
@@ -49,7 +50,10 @@ def test_plain_pyserial_reads_decodable_frames(kind):
     stream = SimStream(load_scenario("pipit3"), DeviceOptions(seed=4))
     where, stop, th = _serve(kind, stream, 20.0)
     try:
-        port = serial.Serial(where, 921600, timeout=0.05) if kind == "pty" else serial.serial_for_url(where, timeout=0.05)
+        if kind == "pty":
+            port = serial.Serial(where, 921600, timeout=0.05)  # the real POSIX port class
+        else:
+            port = serial.serial_for_url(where, timeout=0.05)
         port.write(START)
         dec = fp.StreamDecoder()
         got = _read_until(port, dec, 4000, 10.0)  # one second of 4 kHz samples
