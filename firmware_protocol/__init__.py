@@ -23,7 +23,7 @@ from .constants import (
     MotorFlags,
     StopReason,
 )
-from .decoder import DecodeCounters, GyroBatch, Received, StreamDecoder
+from .decoder import DecodeCounters, GyroBatch, MotorBatch, Received, StreamDecoder
 from .framing import FrameError, crc16, encode_frame, encode_raw, frame_body, unstuff_body
 from .messages import (
     ArmBench,
@@ -50,7 +50,7 @@ __all__ = [
     "ERROR_BURST_FRAMES", "ERROR_BURST_WINDOW_MS",
     "MAX_ENCODED", "MAX_GYRO_BATCH", "MAX_MOTORS", "MAX_PAYLOAD", "PROTOCOL_VERSION", "THROTTLE_FULL",
     "AckResult", "AxisConvention", "BenchState", "Fault", "FilterFlags", "LogLevel", "MessageType",
-    "MotorFlags", "StopReason", "DecodeCounters", "GyroBatch", "Received", "StreamDecoder", "FrameError",
+    "MotorFlags", "StopReason", "DecodeCounters", "GyroBatch", "MotorBatch", "Received", "StreamDecoder", "FrameError",
     "crc16", "encode_frame", "encode_raw", "frame_body", "unstuff_body", "ArmBench", "CommandAck",
     "DeviceInfo", "DeviceStatus", "GyroBlock", "HostHeartbeat", "LogText", "MalformedPayload", "Message",
     "MotorEntry", "MotorState", "RequestInfo", "SetThrottle", "SimTap", "StopMotors", "StreamControl",

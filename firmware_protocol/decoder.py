@@ -27,6 +27,8 @@ from .constants import (
 from .messages import DECODERS, GyroBlock, MalformedPayload, Message
 
 _GYRO = int(MessageType.GYRO_BLOCK)
+_MOTOR = int(MessageType.MOTOR_STATE)
+_INFO = int(MessageType.DEVICE_INFO)
 _GYRO_FIXED = HEADER_BYTES + GYRO_HEADER_BYTES + 2  # body bytes besides the samples: 13
 _COUNT_AT = HEADER_BYTES + 8  # body offset of GYRO_BLOCK.count
 
@@ -100,6 +102,46 @@ class GyroBatch:
         )
 
 
+@dataclass(frozen=True, slots=True, eq=False)
+class MotorBatch:
+    """Consecutive MOTOR_STATE frames as arrays (only from a decoder made with ``merge=True``).
+
+    ``t_us`` (m,) uint32 device time; ``erpm`` (m, motors) uint32 electrical RPM; ``throttle``
+    (m, motors) uint16 in 0.01 %; ``flags`` (m, motors) uint8 (bit 0: telemetry valid).
+    """
+
+    t_us: np.ndarray
+    erpm: np.ndarray
+    throttle: np.ndarray
+    flags: np.ndarray
+
+    def __len__(self) -> int:
+        return int(self.t_us.shape[0])
+
+
+def _motor_run(bodies: list[bytes], length: int) -> MotorBatch:
+    k = len(bodies)
+    motors = (length - 9) // 7
+    arr = np.frombuffer(b"".join(bodies), dtype=np.uint8).reshape(k, length)
+    t_us = np.ascontiguousarray(arr[:, 2:6]).view("<u4").reshape(k)
+    ent = arr[:, 7 : 7 + 7 * motors].reshape(k, motors, 7)
+    erpm = np.ascontiguousarray(ent[:, :, 0:4]).view("<u4").reshape(k, motors)
+    thr = np.ascontiguousarray(ent[:, :, 4:6]).view("<u2").reshape(k, motors)
+    flags = ent[:, :, 6].copy()
+    return MotorBatch(t_us, erpm, thr, flags)
+
+
+def motor_batches_from_bodies(bodies: list[bytes]) -> list[MotorBatch]:
+    """One MotorBatch per run of equal-length MOTOR_STATE bodies (the motor count seldom changes)."""
+    out = []
+    start = 0
+    for i in range(1, len(bodies) + 1):
+        if i == len(bodies) or len(bodies[i]) != len(bodies[start]):
+            out.append(_motor_run(bodies[start:i], len(bodies[start])))
+            start = i
+    return out
+
+
 def _equal_length_run(bodies: list[bytes], length: int) -> GyroBatch:
     k = len(bodies)
     arr = np.frombuffer(b"".join(bodies), dtype=np.uint8).reshape(k, length)
@@ -134,7 +176,13 @@ class StreamDecoder:
         Type codes to decode; others count as ``unknown_type``. Defaults to every v1 type.
     """
 
-    def __init__(self, known_types: set[int] | None = None):
+    def __init__(self, known_types: set[int] | None = None, merge: bool = False):
+        #: merge=True (the host's live path): within one feed, every run of frames between two
+        #: DEVICE_INFO messages comes out as its other messages (Received), then one MotorBatch,
+        #: then one GyroBatch. A device sends in time order, so every motor state up to a gyro
+        #: sample's time is known before that sample is (SPEC 4.3); merging keeps per-frame Python
+        #: work off the hot path.
+        self.merge = merge
         self.counters = DecodeCounters()
         self._tail = b""
         self._discarding = False
@@ -176,8 +224,10 @@ class StreamDecoder:
             self._discarding = True
         self._tail = tail
 
-        out: list[GyroBatch | Received] = []
+        out: list = []
         gyro: list[bytes] = []
+        motor: list[bytes] = []
+        merge = self.merge
         decode = stuffing.decode
         decode_error = stuffing.DecodeError
         decoders = self._decoders
@@ -216,6 +266,14 @@ class StreamDecoder:
                     self.rejected_payloads.append((t, body[1], f"GYRO_BLOCK.count={count} in {blen - 4} bytes"))
                     continue
                 gyro.append(body)
+            elif merge and t == _MOTOR and _MOTOR in decoders:
+                mcount = body[6] if blen > 6 else 255
+                if mcount > 8 or blen != 9 + 7 * mcount:
+                    c.malformed += 1
+                    c.bytes_skipped += n + 1
+                    self.rejected_payloads.append((t, body[1], f"MOTOR_STATE.count={mcount} in {blen - 4} bytes"))
+                    continue
+                motor.append(body)
             else:
                 dec = decoders.get(t)
                 if dec is None:
@@ -228,21 +286,35 @@ class StreamDecoder:
                     c.bytes_skipped += n + 1
                     self.rejected_payloads.append((t, body[1], str(exc)))
                     continue
-                if gyro:
-                    out.append(self._flush(gyro))
-                    gyro = []
-                out.append(Received(body[1], msg))
+                if merge:
+                    if t == _INFO:
+                        self._flush_run(out, gyro, motor)
+                        gyro, motor = [], []
+                    out.append(Received(body[1], msg))
+                else:
+                    if gyro:
+                        out.append(self._flush(gyro))
+                        gyro = []
+                    out.append(Received(body[1], msg))
             s = body[1]
             if last_seq >= 0:
                 lost += (s - last_seq - 1) & 0xFF
             last_seq = s
             ok += 1
-        if gyro:
+        if merge:
+            self._flush_run(out, gyro, motor)
+        elif gyro:
             out.append(self._flush(gyro))
         self._last_seq = last_seq
         c.frames_lost += lost
         c.frames_ok += ok
         return out
+
+    def _flush_run(self, out: list, gyro: list[bytes], motor: list[bytes]) -> None:
+        if motor:
+            out.extend(motor_batches_from_bodies(motor))
+        if gyro:
+            out.append(self._flush(gyro))
 
     def _flush(self, bodies: list[bytes]) -> GyroBatch:
         batch = gyro_batch_from_bodies(bodies)

@@ -1,0 +1,305 @@
+"""From decoded frames to timed samples: units, time base, gaps, reboots, RPM tracks.
+
+The assembler takes the decoder's items in stream order and produces:
+
+- :class:`Samples`: gyro rates in deg/s (float32, FRD axes), a continuous run of one segment;
+- :class:`Gap`: the series broke (samples lost by sequence number, a device reboot, a
+  reconnect); the next samples open a new segment;
+- :class:`MotorUpdate`: mechanical RPM (electrical RPM / pole pairs, Microchip AN885), throttle and
+  telemetry flags of every motor, with times;
+- :class:`DeviceChange`: a DEVICE_INFO (at connect, after a reboot).
+
+Time is *session time* in seconds: device time (microseconds, 32-bit, unwrapped by modular
+difference, SPEC 4.3) since the first sample, carried across reboots and reconnects with the
+host clock. Nothing here depends on how the byte stream was cut into reads, so a replay of a
+capture gives the same output as the live run.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+import firmware_protocol as fp
+
+U32 = 1 << 32
+HALF = 1 << 31
+
+
+@dataclass(frozen=True)
+class Samples:
+    segment: int
+    start: int  #: index of the first sample within its segment
+    t0_s: float  #: session time of the first sample
+    fs_hz: float
+    dps: np.ndarray  #: (n, 3) float32, roll/pitch/yaw in deg/s (FRD)
+
+
+@dataclass(frozen=True)
+class Gap:
+    t_s: float  #: session time where the series broke
+    reason: str  #: "samples lost", "device reboot", "reconnect", "time jump"
+    lost_samples: int = 0  #: by sequence number (0 when unknown)
+
+
+@dataclass(frozen=True)
+class MotorUpdate:
+    t_s: np.ndarray  #: (m,) session times
+    rpm: np.ndarray  #: (m, motors) mechanical RPM
+    throttle: np.ndarray  #: (m, motors) commanded, 0..1
+    valid: np.ndarray  #: (m, motors) bool: live telemetry
+
+
+@dataclass(frozen=True)
+class DeviceChange:
+    info: fp.DeviceInfo
+    reboot: bool
+
+
+@dataclass
+class AssemblerStats:
+    samples: int = 0
+    samples_lost: int = 0  #: by sequence number
+    gaps: int = 0
+    reboots: int = 0
+    segments: int = 0
+    orphan_blocks: int = 0  #: gyro blocks before any DEVICE_INFO (dropped: no sensitivity yet)
+    drift_ppm: float | None = None  #: device clock against the host clock, once measurable
+
+
+@dataclass
+class _TimeBase:
+    ref_us: int | None = None  #: device clock (unwrapped) at session time ``ref_s``
+    ref_s: float = 0.0
+    last_raw: int = 0
+    unwrapped: int = 0  #: last unwrapped device time, us
+
+    def to_session(self, raw_us: np.ndarray) -> np.ndarray:
+        """Session seconds of raw u32 device times (in stream order), unwrapping as it goes."""
+        raw = np.asarray(raw_us, dtype=np.int64)
+        if raw.size == 0:
+            return np.zeros(0)
+        prev = np.concatenate([[self.last_raw], raw[:-1]])
+        step = (raw - prev) % U32
+        step = np.where(step >= HALF, step - U32, step)  # small backward steps stay backward
+        if self.ref_us is None:
+            step[0] = 0
+            self.unwrapped = int(raw[0])
+            self.ref_us = int(raw[0])
+        un = self.unwrapped + np.cumsum(step)
+        self.unwrapped = int(un[-1])
+        self.last_raw = int(raw[-1])
+        return self.ref_s + (un - self.ref_us) * 1e-6
+
+
+class Assembler:
+    def __init__(self):
+        self.info: fp.DeviceInfo | None = None
+        self.stats = AssemblerStats()
+        self._tb = _TimeBase()
+        self._segment = -1
+        self._seg_index = 0  # samples so far in the current segment
+        self._seg_t0 = 0.0
+        self._expect_seq: int | None = None
+        self._boot_id: int | None = None
+        self._last_sample_s = 0.0
+        self._last_host_s: float | None = None
+        self._drift_ref: tuple[float, float] | None = None  # (host s, session s) early in the run
+        self._scale = 1.0
+        self._signs = np.ones(3, dtype=np.float32)
+        self._fs = 0.0
+        self._pending_break: tuple[str, int] | None = ("start", 0)
+
+    # ---------------------------------------------------------------- public
+
+    def mark_reconnect(self, host_s: float | None = None) -> list:
+        """The link dropped and came back: the next samples open a new segment."""
+        self._pending_break = ("reconnect", 0)
+        self._expect_seq = None
+        return [Gap(self._last_sample_s, "reconnect")]
+
+    def feed(self, items, host_s: float | None = None) -> list:
+        """Assemble decoder items (stream order) read at host time ``host_s`` (monotonic s)."""
+        out: list = []
+        for item in items:
+            if isinstance(item, fp.GyroBatch):
+                self._gyro(item, out)
+            elif isinstance(item, fp.MotorBatch):
+                self._motor_batch(item, out)
+            else:
+                m = item.message
+                if isinstance(m, fp.DeviceInfo):
+                    self._device_info(m, out, host_s)
+                elif isinstance(m, fp.MotorState):
+                    self._motor(m, out)
+                elif isinstance(m, fp.DeviceStatus):
+                    self._status(m, out, host_s)
+                out.append(item)
+        if host_s is not None:
+            self._drift(host_s)
+            self._last_host_s = host_s
+        return out
+
+    # ---------------------------------------------------------------- pieces
+
+    def _device_info(self, info: fp.DeviceInfo, out: list, host_s: float | None) -> None:
+        reboot = self._boot_id is not None and info.boot_id != self._boot_id
+        self.info = info
+        self._boot_id = info.boot_id
+        self._scale = info.dps_per_count
+        self._signs = np.array([1, -1, -1] if info.axis_convention == fp.AxisConvention.FLU else [1, 1, 1], np.float32)
+        self._fs = info.sample_rate_hz
+        if reboot:
+            self._reboot(out, host_s)
+        out.append(DeviceChange(info, reboot))
+
+    def _status(self, st: fp.DeviceStatus, out: list, host_s: float | None) -> None:
+        if self._boot_id is not None and st.boot_id != self._boot_id:
+            self._boot_id = st.boot_id
+            self._reboot(out, host_s)
+
+    def _reboot(self, out: list, host_s: float | None) -> None:
+        self.stats.reboots += 1
+        # carry session time over the reboot with the host clock
+        elapsed = 0.0
+        if host_s is not None and self._last_host_s is not None:
+            elapsed = max(0.0, host_s - self._last_host_s)
+        self._tb = _TimeBase(ref_s=self._last_sample_s + elapsed)
+        self._expect_seq = None
+        self._pending_break = ("device reboot", 0)
+        self._drift_ref = None
+        out.append(Gap(self._last_sample_s, "device reboot"))
+
+    def _gyro(self, batch: fp.GyroBatch, out: list) -> None:
+        if self.info is None:
+            self.stats.orphan_blocks += len(batch.counts)
+            return
+        seq = batch.sample_seq.astype(np.int64)
+        counts = batch.counts.astype(np.int64)
+        first = seq[0] if self._expect_seq is None else self._expect_seq
+        expected = np.concatenate([[first], (seq + counts)[:-1] % U32])
+        diff = (seq - expected) % U32
+        starts = np.concatenate([[0], np.cumsum(counts)])
+        dps = batch.samples.astype(np.float32) * np.float32(self._scale)
+        dps *= self._signs
+        times = self._tb.to_session(batch.t_us)
+        breaks = set(np.flatnonzero(diff != 0).tolist())
+        if self._pending_break is not None:
+            breaks.add(0)
+        bounds = sorted(breaks | {0, len(seq)})
+        for a, b in zip(bounds[:-1], bounds[1:], strict=True):
+            if a in breaks:
+                if self._pending_break is not None:
+                    self._pending_break = None  # its Gap went out when the break was learnt
+                elif diff[a] >= HALF:  # the counter went backwards: a reboot nobody announced
+                    self.stats.reboots += 1
+                    out.append(Gap(self._last_sample_s, "device reboot"))
+                    self._tb = _TimeBase(ref_s=self._last_sample_s)
+                    times[a:] = self._tb.to_session(batch.t_us[a:])
+                else:
+                    lost = int(diff[a])
+                    self.stats.samples_lost += lost
+                    out.append(Gap(self._last_sample_s, "samples lost", lost))
+                self._new_segment(float(times[a]))
+            block = dps[starts[a] : starts[b]]
+            t0 = self._seg_t0 + self._seg_index / self._fs
+            out.append(Samples(self._segment, self._seg_index, t0, self._fs, block))
+            self._seg_index += block.shape[0]
+            self.stats.samples += block.shape[0]
+            self._last_sample_s = self._seg_t0 + self._seg_index / self._fs
+        self._expect_seq = int((seq[-1] + counts[-1]) % U32)
+
+    def _new_segment(self, t0: float) -> None:
+        self._segment += 1
+        self.stats.segments += 1
+        if self._segment > 0:
+            self.stats.gaps += 1
+        self._seg_index = 0
+        self._seg_t0 = t0
+
+    def _motor_batch(self, mb: fp.MotorBatch, out: list) -> None:
+        if self.info is None or mb.erpm.shape[1] == 0:
+            return
+        t = self._tb.to_session(mb.t_us)
+        pp = max(1, self.info.pole_pairs)
+        valid = (mb.flags & int(fp.MotorFlags.TELEMETRY_VALID)) != 0
+        out.append(MotorUpdate(t, mb.erpm / pp, mb.throttle / fp.THROTTLE_FULL, valid))
+
+    def _motor(self, ms: fp.MotorState, out: list) -> None:
+        if self.info is None or not ms.motors:
+            return
+        pp = max(1, self.info.pole_pairs)
+        t = self._tb.to_session(np.array([ms.t_us]))
+        if self._tb.ref_us is None:
+            return
+        rpm = np.array([[m.erpm / pp for m in ms.motors]])
+        thr = np.array([[m.throttle / fp.THROTTLE_FULL for m in ms.motors]])
+        valid = np.array([[bool(m.flags & fp.MotorFlags.TELEMETRY_VALID) for m in ms.motors]])
+        out.append(MotorUpdate(t, rpm, thr, valid))
+
+    def _drift(self, host_s: float) -> None:
+        if self._fs <= 0 or self.stats.samples == 0:
+            return
+        now = (host_s, self._last_sample_s)
+        if self._drift_ref is None:
+            self._drift_ref = now
+            return
+        dh = now[0] - self._drift_ref[0]
+        if dh >= 5.0:
+            ratio = (now[1] - self._drift_ref[1]) / dh
+            ppm = (ratio - 1.0) * 1e6
+            self.stats.drift_ppm = ppm if abs(ppm) < 5000 else None  # not real time (replay, fast sim)
+
+
+@dataclass
+class RpmTrack:
+    """The recent mechanical RPM of every motor, for frame windows (bounded rows)."""
+
+    motors: int
+    capacity: int = 20_000
+    rate_hz: float = 500.0  #: expected MOTOR_STATE rate, to read only the rows a window needs
+
+    def __post_init__(self):
+        from .ring import RingBuffer
+
+        self._t = RingBuffer(self.capacity)
+        self._rpm = RingBuffer(self.capacity, (self.motors,))
+        self._thr = RingBuffer(self.capacity, (self.motors,))
+        self._valid = RingBuffer(self.capacity, (self.motors,), dtype=bool)
+
+    def add(self, u: MotorUpdate) -> None:
+        if u.rpm.shape[1] != self.motors:
+            return
+        self._t.append(u.t_s)
+        self._rpm.append(u.rpm)
+        self._thr.append(u.throttle)
+        self._valid.append(u.valid)
+
+    def window(self, t0: np.ndarray, t1: np.ndarray):
+        """Mean RPM (F, motors), latest RPM (F, motors), mean throttle (F, motors) and all-valid (F, motors)
+        over each window [t0, t1]; NaN where no reading falls in the window."""
+        f = len(t0)
+        newest = self._t.last(1)
+        span = (float(newest[0]) - float(np.min(t0))) if newest.size else 0.0
+        keep = int(max(span, 0.0) * self.rate_hz * 1.25) + 64
+        t = self._t.last(keep)
+        if t.size == 0:
+            nan = np.full((f, self.motors), np.nan)
+            return nan, nan, nan, np.zeros((f, self.motors), bool)
+        rpm = self._rpm.last(keep)
+        thr = self._thr.last(keep)
+        valid = self._valid.last(keep)
+        lo = np.searchsorted(t, t0, side="left")
+        hi = np.searchsorted(t, t1, side="right")
+        c_rpm = np.concatenate([np.zeros((1, self.motors)), np.cumsum(rpm, axis=0)])
+        c_thr = np.concatenate([np.zeros((1, self.motors)), np.cumsum(thr, axis=0)])
+        c_bad = np.concatenate([np.zeros((1, self.motors)), np.cumsum(~valid, axis=0)])
+        n = (hi - lo)[:, None]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = np.where(n > 0, (c_rpm[hi] - c_rpm[lo]) / n, np.nan)
+            mthr = np.where(n > 0, (c_thr[hi] - c_thr[lo]) / n, np.nan)
+        ok = (n > 0) & ((c_bad[hi] - c_bad[lo]) == 0)
+        last_i = np.clip(hi - 1, 0, len(t) - 1)
+        latest = np.where(n > 0, rpm[last_i], np.nan)
+        return mean, latest, mthr, ok

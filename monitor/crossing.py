@@ -1,0 +1,252 @@
+"""The crossing watch: for every mode x motor x order, is a motor harmonic near a frame mode?
+
+States (our own words): ``clear``, ``nearing``, ``crossing``.
+
+- nearing: the order frequency is inside the mode's margin and closing in. The margin is the
+  wider of 10 % of the mode frequency and three half-bandwidths (3 zeta f_n).
+- crossing: the order is inside the half-power band f_n (1 -+ zeta), or inside the margin while
+  the level at the mode is at least 6 dB over its running floor.
+- a rise (clear to nearing, or to crossing) must hold for two frames running, so a spin-up that
+  flashes through a mode in one frame raises nothing;
+- back to clear: the order leaves the band (or the margin) by a hysteresis factor and the level
+  falls 2 dB below the crossing threshold, so a steady throttle at a boundary does not chatter.
+
+Every transition is an event with the time, motor, order, mode, RPM, order frequency, the level
+at the mode in dB (re 1 (deg/s)^2/Hz) and the predicted band 60 f (1 -+ zeta) / k in RPM.
+Vectorised over all channels; sequential only over frames.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .orders import order_label, order_multipliers
+from .profile import Profile
+
+CLEAR, NEARING, CROSSING = 0, 1, 2
+STATE_NAMES = ("clear", "nearing", "crossing")
+
+MARGIN_FRACTION = 0.10
+MARGIN_HALF_BANDWIDTHS = 3.0
+LEVEL_OVER_FLOOR_DB = 6.0
+RELEASE_DB = 2.0
+PERSIST_FRAMES = 2  #: a rise to nearing or crossing must be proposed in this many frames running
+EXIT_MARGIN = 1.15  #: nearing -> clear when the distance exceeds this times the margin
+EXIT_BAND = 1.5  #: crossing -> clear when the distance exceeds this times the half band
+FLOOR_TAU_S = 3.0
+
+
+@dataclass(frozen=True)
+class CrossingEvent:
+    t_s: float
+    state: str
+    mode: str
+    mode_hz: float
+    motor: int  #: 1-based
+    order: float  #: multiple of the shaft frequency
+    order_name: str
+    rpm: float
+    order_hz: float
+    level_db: float
+    floor_db: float
+    band_rpm: tuple[float, float]
+
+    def as_dict(self) -> dict:
+        return {
+            "kind": self.state,
+            "t_s": round(self.t_s, 4),
+            "mode": self.mode,
+            "mode_hz": round(self.mode_hz, 2),
+            "motor": self.motor,
+            "order": self.order,
+            "order_name": self.order_name,
+            "rpm": round(self.rpm, 1),
+            "order_hz": round(self.order_hz, 2),
+            "level_db": round(self.level_db, 2),
+            "floor_db": round(self.floor_db, 2),
+            "band_rpm": [round(self.band_rpm[0], 1), round(self.band_rpm[1], 1)],
+        }
+
+    def text(self) -> str:
+        return (
+            f"{self.t_s:8.2f} s  {self.state.upper():8s} motor {self.motor} {self.order_name} at "
+            f"{self.order_hz:6.1f} Hz ({self.rpm:6.0f} RPM) -> {self.mode} {self.mode_hz:.1f} Hz; "
+            f"band {self.band_rpm[0]:.0f}-{self.band_rpm[1]:.0f} RPM; level {self.level_db:+.1f} dB "
+            f"({self.level_db - self.floor_db:+.1f} over floor)"
+        )
+
+
+@dataclass
+class Band:
+    """An RPM range in which one order kept one mode in the crossing state."""
+
+    mode: str
+    mode_hz: float
+    order: float
+    order_name: str
+    motor: int
+    rpm_low: float
+    rpm_high: float
+    peak_db: float
+
+    def as_dict(self) -> dict:
+        return {
+            "mode": self.mode,
+            "mode_hz": round(self.mode_hz, 2),
+            "order": self.order,
+            "order_name": self.order_name,
+            "motor": self.motor,
+            "rpm_low": round(self.rpm_low, 1),
+            "rpm_high": round(self.rpm_high, 1),
+            "peak_db": round(self.peak_db, 2),
+        }
+
+
+class CrossingWatch:
+    def __init__(self, profile: Profile, motors: int, freqs: np.ndarray, hop_s: float):
+        self.profile = profile
+        self.motors = motors
+        modes = profile.modes
+        self.mult = order_multipliers(profile.blades)
+        self.f_mode = np.array([m.freq_hz for m in modes])[:, None, None]  # (N, 1, 1)
+        self.zeta = np.array([m.damping_ratio for m in modes])[:, None, None]
+        self.half_band = self.f_mode * self.zeta
+        self.margin = np.maximum(MARGIN_FRACTION * self.f_mode, MARGIN_HALF_BANDWIDTHS * self.half_band)
+        shape = (len(modes), motors, len(self.mult))
+        self.state = np.zeros(shape, dtype=np.int8)
+        self._proposed = np.zeros(shape, dtype=np.int8)
+        self._runs = np.zeros(shape, dtype=np.int16)
+        self.floor_db = np.full(len(modes), np.nan)
+        self.level_db = np.full(len(modes), np.nan)
+        self.alpha = 1.0 - np.exp(-hop_s / FLOOR_TAU_S)
+        nb = freqs.shape[0]
+        df = freqs[1] - freqs[0]
+        band_idx, floor_w = [], np.zeros((nb, len(modes)))
+        for j, m in enumerate(modes):
+            lo, hi = m.band_hz
+            bb = np.flatnonzero((freqs >= lo - df / 2) & (freqs <= hi + df / 2))
+            if bb.size == 0:
+                bb = np.array([int(np.argmin(np.abs(freqs - m.freq_hz)))])
+            fb = np.flatnonzero((freqs >= 0.6 * m.freq_hz) & (freqs <= 1.4 * m.freq_hz) & ((freqs < lo) | (freqs > hi)))
+            fb = fb if fb.size else bb
+            band_idx.append(bb)
+            floor_w[fb, j] = 1.0 / fb.size
+        width = max(len(b) for b in band_idx) if band_idx else 1
+        #: (modes, width) bin indices of each half-power band, padded by repeating its first bin
+        self._band_idx = np.array([np.pad(b, (0, width - len(b)), mode="edge") for b in band_idx]).reshape(len(modes), -1)
+        #: (bins, modes): the floor is the mean level in dB over 0.6..1.4 f_n outside the band
+        self._floor_w = floor_w
+        self._open: dict[tuple[int, int, int], Band] = {}
+        self.bands: list[Band] = []
+
+    def levels(self, psd_sum: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(level, local floor) at each mode in dB for frames' PSD summed over axes (F, bins)."""
+        db = 10 * np.log10(np.maximum(psd_sum, 1e-30))
+        level = db[:, self._band_idx].max(axis=2)
+        return level, db @ self._floor_w
+
+    def update(self, t_s: np.ndarray, psd_sum: np.ndarray, rpm_latest: np.ndarray, rpm_mean: np.ndarray) -> list:
+        """Advance over F frames. ``psd_sum`` (F, bins); RPM arrays (F, motors). Returns events."""
+        events = []
+        modes = self.profile.modes
+        if not modes:
+            return events
+        levels, floors = self.levels(psd_sum)
+        for i in range(len(t_s)):
+            level, floor = levels[i], floors[i]
+            first = np.isnan(self.floor_db)
+            self.floor_db = np.where(first, floor, self.floor_db + self.alpha * (floor - self.floor_db))
+            self.level_db = level
+            r_now, r_mean = rpm_latest[i], rpm_mean[i]
+            if not np.all(np.isfinite(r_now)):
+                continue
+            f_now = r_now[None, :, None] / 60.0 * self.mult[None, None, :]  # (1, M, K)
+            f_avg = np.where(np.isfinite(r_mean), r_mean, r_now)[None, :, None] / 60.0 * self.mult[None, None, :]
+            d_now = np.abs(f_now - self.f_mode)
+            d_avg = np.abs(f_avg - self.f_mode)
+            closing = d_now < d_avg - 1e-6
+            in_margin = d_now <= self.margin
+            in_band = d_now <= self.half_band
+            over = (level - self.floor_db)[:, None, None]
+            hot = in_margin & (over >= LEVEL_OVER_FLOOR_DB)
+            cool = over < LEVEL_OVER_FLOOR_DB - RELEASE_DB
+            s = self.state
+            new = s.copy()
+            new[(s == CLEAR) & in_margin & closing] = NEARING
+            new[(s != CROSSING) & (in_band | hot)] = CROSSING
+            new[(s == NEARING) & (d_now > EXIT_MARGIN * self.margin)] = CLEAR
+            leave = (s == CROSSING) & (d_now > EXIT_BAND * self.half_band) & (cool | ~in_margin)
+            new[leave] = CLEAR
+            # rises need PERSIST_FRAMES consecutive proposals (a spin-up flashing past is no crossing)
+            rise = new > s
+            same = rise & (new == self._proposed)
+            self._runs = np.where(same, self._runs + 1, np.where(rise, 1, 0))
+            self._proposed = np.where(rise, new, 0)
+            new = np.where(rise & (self._runs < PERSIST_FRAMES), s, new).astype(np.int8)
+            self._track_bands(new, r_now, level, t_s[i])
+            for n, m, k in zip(*np.nonzero(new != s), strict=True):
+                mode = modes[n]
+                events.append(
+                    CrossingEvent(
+                        float(t_s[i]),
+                        STATE_NAMES[new[n, m, k]],
+                        mode.name,
+                        mode.freq_hz,
+                        int(m) + 1,
+                        float(self.mult[k]),
+                        order_label(float(self.mult[k]), self.profile.blades),
+                        float(r_now[m]),
+                        float(f_now[0, m, k]),
+                        float(level[n]),
+                        float(self.floor_db[n]),
+                        mode.rpm_band(float(self.mult[k])),
+                    )
+                )
+            self.state = new
+        return events
+
+    def _track_bands(self, new: np.ndarray, rpm: np.ndarray, level: np.ndarray, t: float) -> None:
+        modes = self.profile.modes
+        for key in list(self._open):
+            n, m, k = key
+            if new[n, m, k] != CROSSING:
+                self.bands.append(self._open.pop(key))
+        for n, m, k in zip(*np.nonzero(new == CROSSING), strict=True):
+            key = (int(n), int(m), int(k))
+            r = float(rpm[m])
+            b = self._open.get(key)
+            if b is None:
+                mode = modes[n]
+                mult = float(self.mult[k])
+                self._open[key] = Band(mode.name, mode.freq_hz, mult, order_label(mult, self.profile.blades),
+                                       int(m) + 1, r, r, float(level[n]))
+            else:
+                b.rpm_low = min(b.rpm_low, r)
+                b.rpm_high = max(b.rpm_high, r)
+                b.peak_db = max(b.peak_db, float(level[n]))
+
+    def all_bands(self) -> list[Band]:
+        """Closed bands and the ones still open, merged per (mode, order) over all motors."""
+        merged: dict[tuple[str, float], Band] = {}
+        for b in [*self.bands, *self._open.values()]:
+            key = (b.mode, b.order)
+            m = merged.get(key)
+            if m is None:
+                merged[key] = Band(b.mode, b.mode_hz, b.order, b.order_name, 0, b.rpm_low, b.rpm_high, b.peak_db)
+            else:
+                m.rpm_low = min(m.rpm_low, b.rpm_low)
+                m.rpm_high = max(m.rpm_high, b.rpm_high)
+                m.peak_db = max(m.peak_db, b.peak_db)
+        return sorted(merged.values(), key=lambda b: (b.mode_hz, b.order))
+
+    def mode_states(self) -> list[dict]:
+        """Per mode: the worst state over motors and orders, and which motor/order is nearest."""
+        out = []
+        for n, mode in enumerate(self.profile.modes):
+            s = self.state[n]
+            worst = int(s.max()) if s.size else 0
+            out.append({"mode": mode.name, "freq_hz": mode.freq_hz, "state": STATE_NAMES[worst],
+                        "level_db": float(self.level_db[n]) if np.isfinite(self.level_db[n]) else None})
+        return out

@@ -1,0 +1,281 @@
+"""The headless engine: assembled samples and motor speeds in, spectra, orders and events out.
+
+One :class:`Engine` serves the live screen, headless ``watch``, ``replay`` and CSV input: it is
+fed the assembler's output in stream order and is deterministic, so a replay of a capture yields
+the live run's events exactly. Its cost is set by the sample rate (one STFT frame per hop), not
+by how often anyone looks at it; views read :meth:`Engine.snapshot`, an immutable copy.
+"""
+
+from __future__ import annotations
+
+import threading
+from dataclasses import dataclass, field
+
+import numpy as np
+
+import firmware_protocol as fp
+
+from .assembler import DeviceChange, Gap, MotorUpdate, RpmTrack, Samples
+from .crossing import CrossingWatch
+from .events import Notice
+from .orders import order_amplitudes, order_freqs
+from .profile import Profile
+from .ring import RingBuffer
+from .rpm_estimate import RpmEstimator
+from .spectra import RollingSTFT, SpectrumConfig
+from .stray import StrayPeakFinder
+
+
+@dataclass(frozen=True)
+class EngineConfig:
+    window_s: float = 0.256
+    overlap: float = 0.75
+    window: str = "hann"
+    ema_tau_s: float = 1.0  #: time constant of the averaged spectrum
+    waterfall_rows: int = 256
+    history_s: float = 30.0  #: samples kept for analysis (bounded)
+    stray_peaks: bool = True
+
+
+@dataclass(frozen=True)
+class Snapshot:
+    """What a view needs, copied at one instant (never changes after creation)."""
+
+    t_s: float
+    fs_hz: float
+    freqs: np.ndarray  #: (bins,) Hz
+    psd: np.ndarray | None  #: (bins, 3) newest frame, (deg/s)^2/Hz
+    amp: np.ndarray | None  #: (bins, 3) newest frame, deg/s
+    ema: np.ndarray | None  #: (bins, 3) exponentially averaged PSD
+    peak: np.ndarray | None  #: (bins, 3) peak hold of the PSD
+    rpm: np.ndarray  #: (motors,) mean mechanical RPM over the newest window
+    rpm_estimated: bool
+    throttle: np.ndarray  #: (motors,) 0..1
+    telemetry: np.ndarray  #: (motors,) bool
+    order_hz: np.ndarray  #: (motors, 4)
+    order_amp: np.ndarray  #: (motors, 4) deg/s
+    mode_states: list
+    frames: int
+    waterfall_total: int  #: rows ever written (a view asks for rows newer than it has)
+    bands: list = field(default_factory=list)
+
+
+class Engine:
+    def __init__(self, config: EngineConfig | None = None, profile: Profile | None = None):
+        self.config = config or EngineConfig()
+        self.profile = profile or Profile()
+        self.info: fp.DeviceInfo | None = None
+        self.stft: RollingSTFT | None = None
+        self.spec: SpectrumConfig | None = None
+        self.frames = 0
+        self.events: list = []  # bounded by the consumer (see drain_events)
+        self._lock = threading.Lock()
+        self._seg = -1
+        self._seg_t0 = 0.0
+        self._last_t = 0.0
+        self._rpm_estimated = False
+        self.crossing: CrossingWatch | None = None
+        self.stray: StrayPeakFinder | None = None
+        self.estimator: RpmEstimator | None = None
+        self.rpm_track: RpmTrack | None = None
+        self._reset_views()
+
+    # ---------------------------------------------------------------- set-up
+
+    def _reset_views(self) -> None:
+        self.last_psd = self.last_amp = self.ema = self.peak = None
+        self.last_rpm = np.zeros(0)
+        self.last_thr = np.zeros(0)
+        self.last_valid = np.zeros(0, bool)
+        self.last_order_hz = np.zeros((0, 4))
+        self.last_order_amp = np.zeros((0, 4))
+        self.waterfall: RingBuffer | None = None
+        self.waterfall_t: RingBuffer | None = None
+        self.history: RingBuffer | None = None
+
+    def _configure(self, info: fp.DeviceInfo) -> None:
+        fs = info.sample_rate_hz
+        motors = info.motor_count
+        same = self.info is not None and self.info.sample_rate_hz == fs and self.info.motor_count == motors
+        self.info = info
+        if same and self.stft is not None:
+            return
+        self.spec = SpectrumConfig(fs, self.config.window_s, self.config.overlap, self.config.window)
+        self.stft = RollingSTFT(self.spec)
+        freqs = self.spec.freqs
+        hop_s = self.spec.hop / fs
+        self.crossing = CrossingWatch(self.profile, motors, freqs, hop_s) if self.profile.modes else None
+        self.stray = StrayPeakFinder(self.profile, freqs) if self.config.stray_peaks else None
+        self.estimator = RpmEstimator(freqs, self.profile.blades, window=self.config.window)
+        rate = max(1.0, float(info.motor_state_rate_hz))
+        self.rpm_track = RpmTrack(motors, capacity=max(1000, int(rate * 20)), rate_hz=rate)
+        self._stray_every = max(1, int(round(0.1 / hop_s)))  # the stray search runs at about 10 Hz
+        self._reset_views()
+        bins = freqs.shape[0]
+        self.waterfall = RingBuffer(self.config.waterfall_rows, (bins, 3), dtype=np.float32)
+        self.waterfall_t = RingBuffer(self.config.waterfall_rows, (2,))  # (time s, gap-before flag)
+        self.history = RingBuffer(int(self.config.history_s * fs), (3,), dtype=np.float32)
+        self._gap_pending = True
+
+    def reconfigure(self, config: EngineConfig) -> None:
+        """New window length, overlap or window: spectra restart (the waterfall is cleared)."""
+        with self._lock:
+            self.config = config
+            if self.info is not None:
+                info, self.info = self.info, None
+                self.stft = None
+                self._configure(info)
+
+    def set_profile(self, profile: Profile) -> None:
+        with self._lock:
+            self.profile = profile
+            if self.info is not None and self.spec is not None:
+                hop_s = self.spec.hop / self.spec.fs_hz
+                self.crossing = CrossingWatch(profile, self.info.motor_count, self.spec.freqs, hop_s) if profile.modes else None
+                if self.stray is not None:
+                    self.stray = StrayPeakFinder(profile, self.spec.freqs)
+
+    # ---------------------------------------------------------------- feeding
+
+    def feed(self, items) -> list:
+        """Process assembled items; returns the events they caused (also kept in ``events``)."""
+        new: list = []
+        with self._lock:
+            for it in items:
+                if isinstance(it, Samples):
+                    self._samples(it, new)
+                elif isinstance(it, MotorUpdate):
+                    if self.rpm_track is not None:
+                        self.rpm_track.add(it)
+                elif isinstance(it, Gap):
+                    if self.stft is not None:
+                        self.stft.reset()
+                    self._gap_pending = True
+                    kind = {"device reboot": "reboot", "reconnect": "reconnect"}.get(it.reason, "gap")
+                    msg = f"{it.reason}" + (f": {it.lost_samples} samples" if it.lost_samples else "")
+                    new.append(Notice(kind, it.t_s, msg, {"lost_samples": it.lost_samples}))
+                elif isinstance(it, DeviceChange):
+                    self._configure(it.info)
+                    i = it.info
+                    text = (f"{i.board_id or 'device'}: gyro {i.sample_rate_hz:g} Hz, {float(i.counts_per_dps):g} "
+                            f"counts per deg/s, {'raw' if i.raw else 'FILTERED on the device'}, {i.motor_count} motors, "
+                            f"{i.pole_pairs} pole pairs")
+                    new.append(Notice("device", self._last_t, text, {"reboot": it.reboot}))
+            self.events.extend(new)
+            if len(self.events) > 10_000:
+                del self.events[:-10_000]
+        return new
+
+    def _samples(self, s: Samples, new: list) -> None:
+        if self.stft is None:
+            return
+        if s.segment != self._seg:
+            self._seg = s.segment
+            self._seg_t0 = s.t0_s - s.start / s.fs_hz
+            if self.stft.samples:
+                self.stft.reset()
+        self.history.append(s.dps)
+        self._last_t = s.t0_s + s.dps.shape[0] / s.fs_hz
+        fb = self.stft.push(s.dps)
+        if fb is not None:
+            self._frames(fb, new)
+
+    def _frames(self, fb, new: list) -> None:
+        spec = self.spec
+        fs = spec.fs_hz
+        n = spec.nperseg
+        t0 = self._seg_t0 + fb.start / fs
+        t1 = t0 + n / fs
+        f = len(fb)
+        motors = self.info.motor_count
+        psd_sum = fb.psd.sum(axis=2)
+        if motors:
+            mean, latest, thr, valid = self.rpm_track.window(t0, t1)
+        else:
+            mean = latest = thr = np.full((f, 0), np.nan)
+            valid = np.zeros((f, 0), bool)
+        estimated = np.zeros(f, bool)
+        no_tel = ~valid.any(axis=1) if motors else np.ones(f, bool)
+        if np.any(no_tel) and motors:
+            for i in np.flatnonzero(no_tel):
+                r = self.estimator.estimate(psd_sum[i])
+                mean[i] = r
+                latest[i] = r
+                estimated[i] = True
+        ofreq = order_freqs(mean, self.profile.blades)
+        oamp, _ = order_amplitudes(fb.amp, ofreq, spec.bin_hz)
+        # averaged spectrum and peak hold
+        alpha = 1.0 - np.exp(-(spec.hop / fs) / self.config.ema_tau_s)
+        for i in range(f):
+            p = fb.psd[i]
+            if self.ema is None or self._gap_pending:
+                self.ema = p.copy()
+                self.peak = p.copy() if self.peak is None else np.maximum(self.peak, p)
+            else:
+                self.ema += alpha * (p - self.ema)
+                np.maximum(self.peak, p, out=self.peak)
+            self.waterfall.append(p.astype(np.float32)[None])
+            self.waterfall_t.append(np.array([[t1[i], 1.0 if self._gap_pending else 0.0]]))
+            self._gap_pending = False
+        if self.crossing is not None and motors:
+            new.extend(self.crossing.update(t1, psd_sum, latest, mean))
+        if self.stray is not None:
+            for i in range(f):
+                if (self.frames + i) % self._stray_every == 0:
+                    new.extend(self.stray.update(float(t1[i]), fb.psd[i], mean[i] if motors else np.zeros(0)))
+        self.frames += f
+        self.last_psd = fb.psd[-1]
+        self.last_amp = fb.amp[-1]
+        self.last_rpm = mean[-1]
+        self.last_thr = thr[-1]
+        self.last_valid = valid[-1]
+        self._rpm_estimated = bool(estimated[-1])
+        self.last_order_hz = ofreq[-1]
+        self.last_order_amp = oamp[-1]
+        self._last_t = float(t1[-1])
+
+    # ---------------------------------------------------------------- reading
+
+    def clear_peak_hold(self) -> None:
+        with self._lock:
+            self.peak = None if self.last_psd is None else self.last_psd.copy()
+
+    def snapshot(self) -> Snapshot:
+        with self._lock:
+            cp = (lambda a: None if a is None else a.copy())
+            freqs = self.spec.freqs if self.spec is not None else np.zeros(0)
+            return Snapshot(
+                t_s=self._last_t,
+                fs_hz=self.spec.fs_hz if self.spec else 0.0,
+                freqs=freqs,
+                psd=cp(self.last_psd),
+                amp=cp(self.last_amp),
+                ema=cp(self.ema),
+                peak=cp(self.peak),
+                rpm=self.last_rpm.copy(),
+                rpm_estimated=self._rpm_estimated,
+                throttle=self.last_thr.copy(),
+                telemetry=self.last_valid.copy(),
+                order_hz=self.last_order_hz.copy(),
+                order_amp=self.last_order_amp.copy(),
+                mode_states=self.crossing.mode_states() if self.crossing else [],
+                frames=self.frames,
+                waterfall_total=self.waterfall.total if self.waterfall is not None else 0,
+                bands=[b.as_dict() for b in self.crossing.all_bands()] if self.crossing else [],
+            )
+
+    def waterfall_rows(self, since_total: int) -> tuple[np.ndarray, np.ndarray]:
+        """Waterfall rows written after ``since_total`` (at most the ring's capacity): (rows, times)."""
+        with self._lock:
+            if self.waterfall is None:
+                return np.zeros((0, 0, 3), np.float32), np.zeros((0, 2))
+            n = self.waterfall.total - since_total
+            return self.waterfall.last(n), self.waterfall_t.last(n)
+
+    def bands(self) -> list:
+        with self._lock:
+            return self.crossing.all_bands() if self.crossing else []
+
+    def stray_peaks(self) -> list:
+        with self._lock:
+            return list(self.stray.reported) if self.stray else []

@@ -1,0 +1,157 @@
+"""Rolling short-time spectra of gyro rates: PSD in (deg/s)^2/Hz and amplitude in deg/s.
+
+:class:`RollingSTFT` takes sample blocks of any length as they arrive and emits one frame per hop
+of new samples, computing every complete frame of a block in one batched ``numpy.fft.rfft``.
+Frames start at sample 0, hop, 2 hop, ... of a continuous segment; :meth:`RollingSTFT.reset`
+starts a new segment, so no frame ever spans a gap.
+
+Scaling (one-sided, interior bins doubled; DC and an even-length Nyquist bin not):
+
+- PSD density: 2 |X[k]|^2 / (fs sum(w^2)), the scaling of ``scipy.signal.welch(scaling='density')``
+  and of ``ShortTimeFFT(..., scale_to='psd', fft_mode='onesided2X')``;
+- amplitude: 2 |X[k]| / sum(w) (coherent gain corrected: a tone of amplitude A on a bin centre
+  reads A).
+
+Each frame has its mean removed first (``detrend='constant'``, as ``welch`` does by default).
+Windows are periodic (``scipy.signal.get_window``): Hann by default, flat-top for amplitude
+(F. J. Harris, Proc. IEEE 66(1), 1978).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Literal, get_args
+
+import numpy as np
+from numpy.lib.stride_tricks import sliding_window_view
+from scipy import signal
+
+WindowName = Literal["hann", "flattop"]
+
+
+@dataclass(frozen=True)
+class SpectrumConfig:
+    """How spectra are computed. ``window_s`` and ``overlap`` are rounded to whole samples."""
+
+    fs_hz: float
+    window_s: float = 0.256
+    overlap: float = 0.75
+    window: WindowName = "hann"
+
+    def __post_init__(self):
+        if self.window not in get_args(WindowName):
+            raise ValueError(f"window={self.window!r} not in {get_args(WindowName)}")
+        if not 0.0 <= self.overlap <= 0.95:
+            raise ValueError(f"overlap={self.overlap} must be between 0 and 0.95")
+        if not self.fs_hz > 0:
+            raise ValueError(f"fs_hz={self.fs_hz} must be positive")
+        if self.nperseg < 16:
+            raise ValueError(f"window_s={self.window_s} gives {self.nperseg} samples at {self.fs_hz} Hz; need 16")
+
+    @property
+    def nperseg(self) -> int:
+        return int(round(self.window_s * self.fs_hz))
+
+    @property
+    def noverlap(self) -> int:
+        return int(round(self.nperseg * self.overlap))
+
+    @property
+    def hop(self) -> int:
+        return self.nperseg - self.noverlap
+
+    @property
+    def bin_hz(self) -> float:
+        return self.fs_hz / self.nperseg
+
+    @property
+    def freqs(self) -> np.ndarray:
+        return np.fft.rfftfreq(self.nperseg, 1.0 / self.fs_hz)
+
+
+_WINDOW_CACHE: dict[tuple[str, int], tuple[np.ndarray, float, float]] = {}
+
+
+def window(name: str, n: int) -> tuple[np.ndarray, float, float]:
+    """(read-only periodic window, sum(w), sum(w^2)); cached whole for thread safety."""
+    key = (name, n)
+    hit = _WINDOW_CACHE.get(key)
+    if hit is None:
+        w = signal.get_window(name, n, fftbins=True).astype(np.float64)
+        w.setflags(write=False)
+        hit = (w, float(w.sum()), float(np.sum(w * w)))
+        _WINDOW_CACHE[key] = hit
+    return hit
+
+
+def one_sided_factor(n: int) -> np.ndarray:
+    """2 for interior bins, 1 for DC and (n even) Nyquist."""
+    f = np.full(n // 2 + 1, 2.0)
+    f[0] = 1.0
+    if n % 2 == 0:
+        f[-1] = 1.0
+    return f
+
+
+@dataclass(frozen=True)
+class FrameBatch:
+    """Consecutive frames of one segment.
+
+    ``start`` (F,) sample index of each frame's first sample within the segment;
+    ``psd`` (F, bins, C) in (deg/s)^2/Hz; ``amp`` (F, bins, C) in deg/s.
+    """
+
+    segment: int
+    start: np.ndarray
+    psd: np.ndarray
+    amp: np.ndarray
+
+    def __len__(self) -> int:
+        return int(self.start.shape[0])
+
+
+class RollingSTFT:
+    """Streaming STFT of C channels (roll, pitch, yaw); see the module docstring."""
+
+    def __init__(self, config: SpectrumConfig, channels: int = 3):
+        self.config = config
+        self.channels = channels
+        n = config.nperseg
+        self.win, s1, s2 = window(config.window, n)
+        factor = one_sided_factor(n)
+        self.psd_scale = factor / (config.fs_hz * s2)
+        self.amp_scale = factor / s1
+        self.segment = -1
+        self.reset()
+
+    def reset(self) -> None:
+        """Start a new segment (after a gap): buffered samples are dropped."""
+        self.segment += 1
+        self._buf = np.empty((0, self.channels), dtype=np.float64)
+        self._buf_start = 0  # segment index of _buf[0]
+        self._next = 0  # segment index where the next frame starts
+        self.samples = 0  # samples pushed into this segment
+
+    def push(self, samples: np.ndarray) -> FrameBatch | None:
+        """Add samples (n, C) in deg/s; returns every frame completed by them, or None."""
+        n_per = self.config.nperseg
+        hop = self.config.hop
+        x = np.asarray(samples, dtype=np.float64)
+        self._buf = np.concatenate([self._buf, x]) if self._buf.size else x.copy()
+        self.samples += x.shape[0]
+        end = self._buf_start + self._buf.shape[0]
+        if end - self._next < n_per:
+            return None
+        starts = np.arange(self._next, end - n_per + 1, hop)
+        rel = starts - self._buf_start
+        frames = sliding_window_view(self._buf, n_per, axis=0)[rel]  # (F, C, N) view, no copy yet
+        frames = frames - frames.mean(axis=2, keepdims=True)
+        spec = np.fft.rfft(frames * self.win, axis=2)  # (F, C, bins)
+        mag2 = spec.real**2 + spec.imag**2
+        psd = np.transpose(mag2 * self.psd_scale, (0, 2, 1))
+        amp = np.transpose(np.sqrt(mag2) * self.amp_scale, (0, 2, 1))
+        self._next = int(starts[-1] + hop)
+        keep_from = self._next - self._buf_start
+        self._buf = self._buf[keep_from:]
+        self._buf_start = self._next
+        return FrameBatch(self.segment, starts, psd, amp)
