@@ -135,7 +135,8 @@ class CrossingWatch:
             floor_w[fb, j] = 1.0 / fb.size
         width = max(len(b) for b in band_idx) if band_idx else 1
         #: (modes, width) bin indices of each half-power band, padded by repeating its first bin
-        self._band_idx = np.array([np.pad(b, (0, width - len(b)), mode="edge") for b in band_idx]).reshape(len(modes), -1)
+        padded = [np.pad(b, (0, width - len(b)), mode="edge") for b in band_idx]
+        self._band_idx = np.array(padded).reshape(len(modes), -1)
         #: (bins, modes): the floor is the mean level in dB over 0.6..1.4 f_n outside the band
         self._floor_w = floor_w
         self._open: dict[tuple[int, int, int], Band] = {}

@@ -131,7 +131,8 @@ class Engine:
             self.profile = profile
             if self.info is not None and self.spec is not None:
                 hop_s = self.spec.hop / self.spec.fs_hz
-                self.crossing = CrossingWatch(profile, self.info.motor_count, self.spec.freqs, hop_s) if profile.modes else None
+                motors = self.info.motor_count
+                self.crossing = CrossingWatch(profile, motors, self.spec.freqs, hop_s) if profile.modes else None
                 if self.stray is not None:
                     self.stray = StrayPeakFinder(profile, self.spec.freqs)
 
@@ -157,9 +158,9 @@ class Engine:
                 elif isinstance(it, DeviceChange):
                     self._configure(it.info)
                     i = it.info
+                    filt = "raw" if i.raw else "FILTERED on the device"
                     text = (f"{i.board_id or 'device'}: gyro {i.sample_rate_hz:g} Hz, {float(i.counts_per_dps):g} "
-                            f"counts per deg/s, {'raw' if i.raw else 'FILTERED on the device'}, {i.motor_count} motors, "
-                            f"{i.pole_pairs} pole pairs")
+                            f"counts per deg/s, {filt}, {i.motor_count} motors, {i.pole_pairs} pole pairs")
                     new.append(Notice("device", self._last_t, text, {"reboot": it.reboot}))
             self.events.extend(new)
             if len(self.events) > 10_000:
@@ -242,7 +243,9 @@ class Engine:
 
     def snapshot(self) -> Snapshot:
         with self._lock:
-            cp = (lambda a: None if a is None else a.copy())
+            def cp(a):
+                return None if a is None else a.copy()
+
             freqs = self.spec.freqs if self.spec is not None else np.zeros(0)
             return Snapshot(
                 t_s=self._last_t,
