@@ -10,6 +10,8 @@ from . import __version__
 EPILOG = """\
 examples:
   spinrig demo                 see the whole idea on a simulated airframe
+  spinrig watch PORT --headless --profile FILE    watch a live airframe
+  spinrig replay FILE --headless                  a capture through the same pipeline
   spinrig ports                list serial ports
   spinrig sim quillback7       a simulated flight controller on a pty
 
@@ -26,7 +28,8 @@ def _add_demo(sub) -> None:
         epilog="example:\n  spinrig demo\n  spinrig demo --seconds 5",
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("--seconds", type=float, default=4.0, help="length of the demo stream, s (default 4)")
+    p.add_argument("--seconds", type=float, help="stop after S seconds (default: the whole 75 s throttle script)")
+    p.add_argument("--seed", type=int, default=1, help="simulator seed (default 1)")
     p.set_defaults(func=lambda a: __import__("monitor.demo", fromlist=["run"]).run(a))
 
 
@@ -39,6 +42,104 @@ def _add_ports(sub) -> None:
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.set_defaults(func=lambda a: __import__("monitor.ports", fromlist=["run"]).run(a))
+
+
+def _add_run_options(p) -> None:
+    p.add_argument("--profile", metavar="FILE", help="frame profile (TOML) of the airframe's known modes")
+    p.add_argument("--json", action="store_true", help="print events and the summary as JSON lines")
+    p.add_argument("--events", metavar="FILE.jsonl", help="also append every event to this file as JSON lines")
+    p.add_argument("--window-s", type=float, default=0.256, help="spectrum window length, s (default 0.256)")
+    p.add_argument("--overlap", type=float, default=0.75, help="window overlap fraction (default 0.75)")
+
+
+def _add_watch(sub) -> None:
+    p = sub.add_parser(
+        "watch",
+        help="watch a live airframe: spectra, motor orders, crossings",
+        description="Stream gyro and motor RPM from a flight controller and warn when a motor harmonic "
+        "crosses a frame mode. PORT is a device path or a pyserial URL (socket://, rfc2217://, loop://, sim://).",
+        epilog="""examples:
+  spinrig watch /dev/ttyACM0 --profile quillback7.toml --headless
+  spinrig watch socket://127.0.0.1:5760 --headless --capture run1.spcap --mounting bungee --props on
+  spinrig watch sim://quillback7 --profile monitor/profiles/quillback7.toml --headless --duration 30
+  spinrig watch run1.csv --headless --json
+
+""" + "Bench safety: props off or the frame clamped, eye protection, clear of the prop arc, a current-limited\n"
+        "supply and a physical kill switch within reach.",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument("port", metavar="PORT", help="device path, pyserial URL, or a .csv file")
+    p.add_argument("--baud", type=int, default=921_600, help="baud rate (default 921600; ignored by USB CDC)")
+    p.add_argument("--headless", action="store_true", help="no screen: print events and a summary")
+    p.add_argument("--capture", metavar="FILE.spcap", help="record the raw stream losslessly to FILE")
+    p.add_argument("--duration", type=float, metavar="S", help="stop after S seconds")
+    p.add_argument("--mounting", choices=["bungee", "foam", "clamp", "hand"], help="how the airframe is held")
+    p.add_argument("--props", choices=["on", "off"], help="props on or off for this run")
+    p.add_argument("--supply-v", type=float, metavar="V", help="supply voltage, V")
+    p.add_argument("--note", help="a free note stored in the capture")
+    _add_run_options(p)
+    p.set_defaults(func=_watch)
+
+
+def _watch(args) -> int:
+    from .headless import run_watch
+
+    if not args.headless:
+        import sys
+
+        print("spinrig watch: the live screen is not built yet; add --headless", file=sys.stderr)
+        return 2
+    return run_watch(args)
+
+
+def _add_replay(sub) -> None:
+    p = sub.add_parser(
+        "replay",
+        help="run a capture through the same pipeline as a live run",
+        description="Replay a capture (.spcap) through the live pipeline: the same spectra and events.",
+        epilog="examples:\n  spinrig replay run1.spcap --headless\n"
+        "  spinrig replay run1.spcap --headless --json --speed 4",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument("file", metavar="FILE")
+    p.add_argument("--headless", action="store_true", help="no screen: print events and a summary")
+    p.add_argument("--speed", type=float, help="pace the replay: 1 is real time (default: as fast as possible)")
+    _add_run_options(p)
+    p.set_defaults(func=lambda a: __import__("monitor.headless", fromlist=["run_replay"]).run_replay(a))
+
+
+def _add_export(sub) -> None:
+    p = sub.add_parser(
+        "export",
+        help="write a capture's samples and motor RPM as CSV or NPZ",
+        description="Export the gyro samples (deg/s) and motor RPM of a capture.",
+        epilog="examples:\n  spinrig export run1.spcap --csv\n  spinrig export run1.spcap --npz -o run1.npz",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument("file", metavar="FILE")
+    fmt = p.add_mutually_exclusive_group(required=True)
+    fmt.add_argument("--csv", action="store_const", const="csv", dest="fmt", help="the CSV layout spinrig reads back")
+    fmt.add_argument("--npz", action="store_const", const="npz", dest="fmt", help="numpy arrays and metadata")
+    p.add_argument("-o", "--output", help="output file (default: FILE with .csv or .npz)")
+    p.set_defaults(func=_export)
+
+
+def _export(args) -> int:
+    import sys
+
+    from .capture import CaptureError
+    from .export import export
+
+    try:
+        out = export(args.file, args.fmt, args.output)
+    except CaptureError as exc:
+        print(f"spinrig: {exc}", file=sys.stderr)
+        return 2
+    except OSError as exc:
+        print(f"spinrig: {args.output or args.file}: {exc.strerror or exc}", file=sys.stderr)
+        return 1
+    print(f"wrote {out}")
+    return 0
 
 
 def _add_sim(sub) -> None:
@@ -66,6 +167,9 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"spinrig {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     _add_demo(sub)
+    _add_watch(sub)
+    _add_replay(sub)
+    _add_export(sub)
     _add_ports(sub)
     _add_sim(sub)
     return parser

@@ -36,6 +36,7 @@ PERSIST_FRAMES = 2  #: a rise to nearing or crossing must be proposed in this ma
 EXIT_MARGIN = 1.15  #: nearing -> clear when the distance exceeds this times the margin
 EXIT_BAND = 1.5  #: crossing -> clear when the distance exceeds this times the half band
 FLOOR_TAU_S = 3.0
+LEVEL_TAU_S = 0.15  #: the level at a mode is smoothed: one frame's PSD bin has chi-squared (2 dof) scatter
 
 
 @dataclass(frozen=True)
@@ -121,6 +122,7 @@ class CrossingWatch:
         self.floor_db = np.full(len(modes), np.nan)
         self.level_db = np.full(len(modes), np.nan)
         self.alpha = 1.0 - np.exp(-hop_s / FLOOR_TAU_S)
+        self.level_alpha = 1.0 - np.exp(-hop_s / LEVEL_TAU_S)
         nb = freqs.shape[0]
         df = freqs[1] - freqs[0]
         band_idx, floor_w = [], np.zeros((nb, len(modes)))
@@ -159,7 +161,8 @@ class CrossingWatch:
             level, floor = levels[i], floors[i]
             first = np.isnan(self.floor_db)
             self.floor_db = np.where(first, floor, self.floor_db + self.alpha * (floor - self.floor_db))
-            self.level_db = level
+            self.level_db = np.where(first, level, self.level_db + self.level_alpha * (level - self.level_db))
+            level = self.level_db
             r_now, r_mean = rpm_latest[i], rpm_mean[i]
             if not np.all(np.isfinite(r_now)):
                 continue

@@ -1,0 +1,280 @@
+"""Headless ``watch``, ``replay`` and ``demo``: events printed as they happen, a summary at the end."""
+
+from __future__ import annotations
+
+import json
+import signal
+import sys
+import threading
+import time
+from dataclasses import asdict
+from pathlib import Path
+
+import serial
+
+from . import __version__
+from .capture import CaptureError, CaptureWriter, read_capture
+from .crossing import CrossingEvent
+from .engine import Engine, EngineConfig
+from .events import Notice, to_json_line
+from .link import Link
+from .profile import Profile, ProfileError, load_profile
+from .session import CaptureReplay, Session
+
+SAFETY = ("BENCH SAFETY: props off or the frame clamped; eye protection; stay clear of the prop arc; "
+          "current-limited supply; a physical kill switch within reach.")
+
+
+class EventPrinter:
+    """Prints events as lines (crossings of several motors in one frame share a line) or JSON."""
+
+    def __init__(self, out=sys.stdout, as_json: bool = False, events_file: Path | None = None):
+        self.out = out
+        self.as_json = as_json
+        self.events_file = open(events_file, "a", encoding="utf-8") if events_file else None  # noqa: SIM115
+        self._pending: list[CrossingEvent] = []
+        self.counts: dict[str, int] = {}
+
+    def __call__(self, events: list) -> None:
+        for e in events:
+            kind = e.state if isinstance(e, CrossingEvent) else e.as_dict()["kind"]
+            self.counts[kind] = self.counts.get(kind, 0) + 1
+            if self.events_file is not None:
+                self.events_file.write(to_json_line(e) + "\n")
+            if self.as_json:
+                self.out.write(to_json_line(e) + "\n")
+                continue
+            if isinstance(e, CrossingEvent):
+                if self._pending and not self._same_group(self._pending[0], e):
+                    self._flush()
+                self._pending.append(e)
+            else:
+                self._flush()
+                self.out.write(e.text() + "\n")
+        self._flush()
+        self.out.flush()
+        if self.events_file is not None:
+            self.events_file.flush()
+
+    @staticmethod
+    def _same_group(a: CrossingEvent, b: CrossingEvent) -> bool:
+        return (a.t_s, a.state, a.mode, a.order) == (b.t_s, b.state, b.mode, b.order)
+
+    def _flush(self) -> None:
+        if not self._pending:
+            return
+        first = self._pending[0]
+        line = first.text()
+        if len(self._pending) > 1:
+            motors = ",".join(str(e.motor) for e in self._pending)
+            line = line.replace(f"motor {first.motor} ", f"motors {motors} ", 1)
+        self.out.write(line + "\n")
+        self._pending = []
+
+    def close(self) -> None:
+        self._flush()
+        if self.events_file is not None:
+            self.events_file.close()
+
+
+def summary(engine: Engine, health: dict, printer: EventPrinter, assembler_stats: dict,
+            extra: dict | None = None) -> dict:
+    return {
+        "kind": "summary",
+        "link": health,
+        "stream": assembler_stats,
+        "events": dict(sorted(printer.counts.items())),
+        "stray_peaks": [p.as_dict() for p in engine.stray_peaks()],
+        "bands": [b.as_dict() for b in engine.bands()],
+        "frames": engine.frames,
+        **(extra or {}),
+    }
+
+
+def print_summary(s: dict, out, as_json: bool) -> None:
+    if as_json:
+        out.write(json.dumps(s, sort_keys=True, default=str) + "\n")
+        return
+    link = s["link"]
+    st = s["stream"]
+    out.write("\n== summary\n")
+    if link:
+        out.write(
+            f"link: {link.get('bytes', 0)} bytes, {link.get('frames_ok', 0)} frames ok, "
+            f"{link.get('crc_errors', 0)} CRC errors, {link.get('malformed', 0)} malformed, {link.get('reconnects', 0)} reconnects, "
+            f"{link.get('overruns', 0)} overruns\n"
+        )
+    out.write(
+        f"stream: {st.get('samples', 0)} samples, {st.get('samples_lost', 0)} lost by sequence number in "
+        f"{st.get('gaps', 0)} gaps, {st.get('reboots', 0)} device reboots"
+        + (f", device clock {st['drift_ppm']:+.0f} ppm against the host" if st.get("drift_ppm") is not None else "")
+        + "\n"
+    )
+    ev = s["events"]
+    out.write(f"crossings: {ev.get('crossing', 0)} crossing, {ev.get('nearing', 0)} nearing events, "
+              f"{s['frames']} spectra\n")
+    if s["bands"]:
+        out.write("bands seen (RPM ranges where an order sat on a mode):\n")
+        for b in s["bands"]:
+            out.write(f"  {b['mode']} {b['mode_hz']:.1f} Hz  {b['order_name']:20s} {b['rpm_low']:7.0f} - "
+                      f"{b['rpm_high']:7.0f} RPM  peak {b['peak_db']:+.1f} dB\n")
+    else:
+        out.write("bands seen: none\n")
+    if s["stray_peaks"]:
+        out.write("stray peaks (not in the profile):\n")
+        for p in s["stray_peaks"]:
+            out.write(f"  {p['freq_hz']:.1f} Hz on {p['axis']}, {p['over_floor_db']:+.1f} dB over the floor\n")
+    for line in s.get("notes", []):
+        out.write(line + "\n")
+    out.flush()
+
+
+def load_profile_arg(path: str | None) -> Profile:
+    if not path:
+        return Profile()
+    return load_profile(path)
+
+
+def engine_config(args) -> EngineConfig:
+    return EngineConfig(window_s=getattr(args, "window_s", 0.256), overlap=getattr(args, "overlap", 0.75))
+
+
+def conditions(args) -> dict:
+    return {
+        "mounting": getattr(args, "mounting", None) or "unknown",
+        "props": getattr(args, "props", None) or "unknown",
+        "supply_v": getattr(args, "supply_v", None),
+        "note": getattr(args, "note", None) or "",
+    }
+
+
+def _err(msg: str) -> int:
+    print(f"spinrig: {msg}", file=sys.stderr)
+    return 2
+
+
+def run_watch(args) -> int:
+    """``spinrig watch PORT --headless``. Exit 0 after --duration or Ctrl-C; 1 on a fatal link error."""
+    try:
+        profile = load_profile_arg(args.profile)
+    except ProfileError as exc:
+        return _err(str(exc))
+    if str(args.port).lower().endswith(".csv"):
+        return run_csv(args, profile)
+    engine = Engine(engine_config(args), profile)
+    capture = None
+    if args.capture:
+        meta = {
+            "format": "spcap 1",
+            "start_time": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+            "port": args.port,
+            "baud": args.baud,
+            "spinrig_version": __version__,
+            "conditions": conditions(args),
+            "profile": profile.to_toml() if profile.modes else None,
+        }
+        try:
+            capture = CaptureWriter(args.capture, meta)
+        except OSError as exc:
+            return _err(f"capture {args.capture}: cannot create: {exc.strerror or exc}")
+    link = Link(args.port, args.baud, capture=capture)
+    try:
+        link.start()
+    except (serial.SerialException, OSError, ValueError) as exc:
+        if capture:
+            capture.close()
+        return _err(f"cannot open {args.port}: {exc}")
+    printer = EventPrinter(as_json=args.json, events_file=Path(args.events) if args.events else None)
+    if not args.json:
+        print(SAFETY)
+        print(f"watching {args.port} at {args.baud} baud" + (f", profile {profile.airframe}" if profile.modes else
+              ", no profile (stray peaks only)") + (f", capture {args.capture}" if capture else ""), flush=True)
+    session = Session(engine, link)
+    stop = threading.Event()
+    old = signal.signal(signal.SIGTERM, lambda *a: stop.set())
+    end = time.monotonic() + args.duration if args.duration else None
+    device_seen = False
+    try:
+        while not stop.is_set() and (end is None or time.monotonic() < end):
+            events = session.pump(timeout=0.1)
+            if events:
+                printer(events)
+            if capture is not None and capture.error:
+                printer([Notice("capture", session.assembler._last_sample_s, capture.error)])
+                capture = None
+            if not device_seen and engine.info is not None:
+                device_seen = True
+                if capture is not None:
+                    capture.write_meta({"device": asdict(engine.info)})
+    except KeyboardInterrupt:
+        pass
+    finally:
+        signal.signal(signal.SIGTERM, old)
+        link.close()
+        for ev in iter(lambda: session.pump(timeout=0.0) or None, None):
+            printer(ev)
+        printer.close()
+        health = asdict(link.health)
+        if link.capture is not None:
+            link.capture.close({"link": health})
+    s = summary(engine, health, printer, asdict(session.assembler.stats))
+    print_summary(s, sys.stdout, args.json)
+    return 0
+
+
+def run_replay(args) -> int:
+    try:
+        profile = load_profile_arg(args.profile)
+    except ProfileError as exc:
+        return _err(str(exc))
+    try:
+        contents = read_capture(args.file)
+    except CaptureError as exc:
+        return _err(str(exc))
+    if profile.modes == () and contents.meta.get("profile"):
+        import tomllib
+
+        from .profile import parse_profile
+
+        try:
+            profile = parse_profile(tomllib.loads(contents.meta["profile"]), f"{args.file} (profile inside)")
+        except (ProfileError, tomllib.TOMLDecodeError):
+            profile = Profile()
+    engine = Engine(engine_config(args), profile)
+    printer = EventPrinter(as_json=args.json, events_file=Path(args.events) if args.events else None)
+    if not args.json:
+        cond = contents.meta.get("conditions", {})
+        print(f"replaying {args.file}: recorded {contents.meta.get('start_time', '?')} from "
+              f"{contents.meta.get('port', '?')}; mounting {cond.get('mounting', '?')}, props {cond.get('props', '?')}")
+    cut = contents.cut_message()
+    notes = [f"note: {cut}"] if cut else []
+    if cut and not args.json:
+        print(cut)
+    replay = CaptureReplay(args.file, engine, speed=args.speed)
+    for events in replay:
+        printer(events)
+    printer.close()
+    link = dict(contents.end.get("link", {}))
+    if not link:
+        c = replay.decoder.counters
+        link = {"bytes": c.bytes_in, "frames_ok": c.frames_ok, "crc_errors": c.crc_errors, "malformed": c.malformed}
+    s = summary(engine, link, printer, asdict(replay.session.assembler.stats), {"notes": notes})
+    print_summary(s, sys.stdout, args.json)
+    return 0
+
+
+def run_csv(args, profile: Profile) -> int:
+    from .csv_input import CsvError, read_csv_items
+
+    try:
+        items = read_csv_items(args.port)
+    except CsvError as exc:
+        return _err(str(exc))
+    engine = Engine(engine_config(args), profile)
+    printer = EventPrinter(as_json=args.json, events_file=Path(args.events) if args.events else None)
+    for chunk in items:
+        printer(engine.feed(chunk))
+    printer.close()
+    s = summary(engine, {}, printer, {})
+    print_summary(s, sys.stdout, args.json)
+    return 0
