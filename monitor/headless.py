@@ -101,8 +101,8 @@ def print_summary(s: dict, out, as_json: bool) -> None:
     if link:
         out.write(
             f"link: {link.get('bytes', 0)} bytes, {link.get('frames_ok', 0)} frames ok, "
-            f"{link.get('crc_errors', 0)} CRC errors, {link.get('malformed', 0)} malformed, {link.get('reconnects', 0)} reconnects, "
-            f"{link.get('overruns', 0)} overruns\n"
+            f"{link.get('crc_errors', 0)} CRC errors, {link.get('malformed', 0)} malformed, "
+            f"{link.get('reconnects', 0)} reconnects, {link.get('overruns', 0)} overruns\n"
         )
     out.write(
         f"stream: {st.get('samples', 0)} samples, {st.get('samples_lost', 0)} lost by sequence number in "
