@@ -3,8 +3,9 @@
 For a Hann window the frequency offset of a tone from its largest bin k follows exactly from the
 ratio of the two largest bins, a = |X[k+1]| / |X[k]|: delta = (2a - 1) / (a + 1) bins (T. Grandke,
 "Interpolation algorithms for discrete Fourier transforms of weighted signals", IEEE Trans.
-Instrum. Meas. 32(2), 1983). Other windows use a parabola through the log magnitudes of three bins
-(the Gaussian fit; J. O. Smith, Spectral Audio Signal Processing, "quadratic interpolation").
+Instrum. Meas. 32(2), 1983). Other windows use the same ratio idea with the window's own
+transform: the ratio |W(1 - delta)| / |W(delta)| is tabulated once (zero-padded FFT of the window)
+and inverted, which is exact for a clean tone whatever the window.
 """
 
 from __future__ import annotations
@@ -31,13 +32,33 @@ def interpolate_bin(mag: np.ndarray, k: np.ndarray | int, window: str = "hann") 
         delta = np.clip(delta, 0.0, 1.0)  # a tone sits between k and the larger neighbour
         delta = np.where(right, delta, -delta)
     else:
-        lm, l0, lp = (np.log(np.maximum(v, 1e-300)) for v in (am, a0, ap))
-        den = lm - 2 * l0 + lp
+        ratios, deltas = _ratio_table(window)
+        right = ap >= am
+        side = np.where(right, ap, am)
         with np.errstate(divide="ignore", invalid="ignore"):
-            delta = np.where(den < 0, 0.5 * (lm - lp) / den, 0.0)
-        delta = np.clip(delta, -0.5, 0.5)
+            alpha = np.where(a0 > 0, side / a0, 0.0)
+        delta = np.interp(alpha, ratios, deltas)
+        delta = np.where(right, delta, -delta)
     edge = (k == 0) | (k == n - 1)
     return np.where(edge, 0.0, delta)
+
+
+_TABLES: dict[str, tuple[np.ndarray, np.ndarray]] = {}
+
+
+def _ratio_table(window: str) -> tuple[np.ndarray, np.ndarray]:
+    """(|W(1-d)|/|W(d)|, d) for d in 0..0.5 bins, increasing in the ratio."""
+    hit = _TABLES.get(window)
+    if hit is None:
+        n, pad = 256, 256
+        w = signal.get_window(window, n, fftbins=True)
+        mag = np.abs(np.fft.rfft(w, n * pad))  # |W| every 1/pad bin
+        d = np.arange(0, pad // 2 + 1) / pad
+        ratio = mag[pad - np.arange(0, pad // 2 + 1)] / mag[np.arange(0, pad // 2 + 1)]
+        order = np.argsort(ratio)
+        hit = (ratio[order], d[order])
+        _TABLES[window] = hit
+    return hit
 
 
 def find_peaks(

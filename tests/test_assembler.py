@@ -1,0 +1,120 @@
+"""The assembler: units, time base, gaps, reboots, chunking invariance."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+import firmware_protocol as fp
+from monitor.assembler import Assembler, Gap, MotorUpdate, RpmTrack, Samples
+
+
+def stream(blocks, info=None, motors=None):
+    info = info or fp.DeviceInfo(sens_num=164, sens_den=10, pole_pairs=7, motor_count=2, gyro_rate_mhz=8_000_000)
+    frames = [fp.encode_frame(info, 0)]
+    for i, (seq, t_us, samples) in enumerate(blocks):
+        frames.append(fp.encode_frame(fp.GyroBlock(seq, t_us, samples), i + 1))
+        if motors is not None:
+            frames.append(fp.encode_frame(motors(t_us), i + 1))
+    return b"".join(frames)
+
+
+def run(data, chunks=(None,)):
+    dec = fp.StreamDecoder(merge=True)
+    asm = Assembler()
+    out = []
+    pos = 0
+    for c in [*chunks[:-1], len(data)] if chunks[0] is not None else [len(data)]:
+        out += asm.feed(dec.feed(data[pos:c]), host_s=0.0)
+        pos = c
+    return asm, out
+
+
+def blocks(n, start_seq=0, t0=0, count=16, value=164):
+    return [(start_seq + k * count, (t0 + k * count * 125) % 2**32, np.full((count, 3), value, np.int16)) for k in range(n)]
+
+
+def test_counts_to_dps_and_erpm_to_rpm():
+    # MPU-6000 product spec: 16.4 LSB per deg/s; Microchip AN885: eRPM = RPM x pole pairs
+    def motors(t):
+        return fp.MotorState(t, (fp.MotorEntry(70_000, 5000, 1), fp.MotorEntry(35_000, 2500, 0)))
+
+    asm, out = run(stream(blocks(4), motors=motors))
+    s = [o for o in out if isinstance(o, Samples)]
+    assert np.allclose(np.concatenate([x.dps for x in s]), 10.0)
+    m = [o for o in out if isinstance(o, MotorUpdate)][0]
+    assert m.rpm[0].tolist() == [10_000.0, 5_000.0] and m.valid[0].tolist() == [True, False]
+    assert m.throttle[0].tolist() == [0.5, 0.25]
+
+
+def test_flu_axes_are_turned_into_frd():
+    info = fp.DeviceInfo(axis_convention=2)
+    asm, out = run(stream([(0, 0, np.array([[164, 164, 164]] * 16, np.int16))], info=info))
+    dps = [o for o in out if isinstance(o, Samples)][0].dps
+    assert dps[0].tolist() == pytest.approx([10.0, -10.0, -10.0])
+
+
+def test_time_base_unwraps_the_32_bit_clock():
+    t0 = 2**32 - 3 * 16 * 125  # wraps after three blocks
+    asm, out = run(stream(blocks(8, t0=t0)))
+    s = [o for o in out if isinstance(o, Samples)]
+    assert len(s) == 1 and s[0].dps.shape[0] == 128 and asm.stats.gaps == 0
+
+
+def test_lost_blocks_break_the_series_and_count_samples():
+    b = blocks(10)
+    del b[3:5]  # two blocks = 32 samples lost
+    asm, out = run(stream(b))
+    gaps = [o for o in out if isinstance(o, Gap)]
+    assert len(gaps) == 1 and gaps[0].lost_samples == 32 and gaps[0].reason == "samples lost"
+    segs = {o.segment for o in out if isinstance(o, Samples)}
+    assert len(segs) == 2 and asm.stats.samples_lost == 32
+
+
+def test_reboot_by_boot_id_and_by_counter_going_back():
+    a = stream(blocks(5, start_seq=1000))
+    b = stream(blocks(5, start_seq=0), info=fp.DeviceInfo(boot_id=99, motor_count=2))
+    asm, out = run(a + b)
+    assert asm.stats.reboots == 1
+    assert [g.reason for g in out if isinstance(g, Gap)] == ["device reboot"]
+    t = [o.t0_s for o in out if isinstance(o, Samples)]
+    assert t == sorted(t)  # session time keeps going forward over the reboot
+    # no DEVICE_INFO after the reboot: the backwards counter is enough
+    data = stream(blocks(5, start_seq=5000)) + b"".join(
+        fp.encode_frame(fp.GyroBlock(k * 16, k * 2000, np.ones((16, 3), np.int16)), 50 + k) for k in range(3))
+    asm, out = run(data)
+    assert asm.stats.reboots == 1 and any(isinstance(o, Gap) and o.reason == "device reboot" for o in out)
+
+
+@settings(max_examples=30, deadline=None)
+@given(st.lists(st.integers(0, 20_000), max_size=10))
+def test_any_chunking_gives_the_same_samples_and_motor_readings(cuts):
+    def motors(t):
+        return fp.MotorState(t, (fp.MotorEntry(t % 9000, 0, 1), fp.MotorEntry(1, 1, 1)))
+
+    data = stream(blocks(60), motors=motors)
+    cuts = sorted(c % len(data) for c in cuts)
+
+    def collect(out):
+        s = np.concatenate([o.dps for o in out if isinstance(o, Samples)])
+        m = np.concatenate([o.rpm for o in out if isinstance(o, MotorUpdate)])
+        t = np.concatenate([o.t_s for o in out if isinstance(o, MotorUpdate)])
+        return s, m, t
+
+    a = collect(run(data)[1])
+    b = collect(run(data, chunks=(*cuts, None))[1])
+    for x, y in zip(a, b, strict=True):
+        np.testing.assert_array_equal(x, y)
+
+
+def test_rpm_track_window_means():
+    tr = RpmTrack(2, capacity=100, rate_hz=100)
+    t = np.arange(50) / 100.0
+    rpm = np.stack([np.arange(50) * 10.0, np.full(50, 7.0)], axis=1)
+    tr.add(MotorUpdate(t, rpm, np.zeros((50, 2)), np.ones((50, 2), bool)))
+    mean, latest, _, ok = tr.window(np.array([0.1]), np.array([0.19]))
+    assert mean[0].tolist() == pytest.approx([145.0, 7.0]) and latest[0].tolist() == [190.0, 7.0] and ok.all()
+    mean, _, _, ok = tr.window(np.array([5.0]), np.array([6.0]))
+    assert np.isnan(mean).all() and not ok.any()

@@ -1,0 +1,188 @@
+"""Orders, the crossing watch, stray peaks and the RPM estimate."""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+import numpy as np
+import pytest
+from hypothesis import given
+from hypothesis import strategies as st
+
+import firmware_protocol as fp
+from monitor.assembler import Assembler
+from monitor.crossing import CrossingWatch
+from monitor.engine import Engine, EngineConfig
+from monitor.orders import order_amplitudes, order_freqs
+from monitor.profile import Mode, Profile, ProfileError, load_profile, parse_profile
+from simulators.device import DeviceOptions
+from simulators.faults import FaultPlan
+from simulators.scenario import load_scenario
+from simulators.stream import SimStream, StreamOptions
+
+PROFILES = __import__("pathlib").Path(__file__).resolve().parents[1] / "monitor" / "profiles"
+
+
+def test_order_frequencies_follow_campbell_lines():
+    # Campbell diagram order lines f = k n / 60; blade-pass = blades x RPM / 60
+    f = order_freqs(np.array([[6000.0, 12000.0]]), blades=3)
+    assert f[0, 0].tolist() == [100.0, 200.0, 300.0, 600.0]
+    assert f[0, 1].tolist() == [200.0, 400.0, 600.0, 1200.0]
+
+
+def test_order_amplitude_reads_a_known_tone():
+    bins = np.arange(1025) * (8000 / 2048)
+    amp = np.zeros((1, 1025, 3))
+    k = int(round(100.0 / bins[1]))
+    amp[0, k, 1] = 4.0
+    rss, axis = order_amplitudes(amp, order_freqs(np.array([[6000.0]]), 3), bins[1])
+    assert rss[0, 0, 0] == pytest.approx(4.0) and axis[0, 0, 0] == 1
+
+
+def test_band_in_rpm_is_60_f_1_pm_zeta_over_k():
+    m = Mode("arm", 120.0, 0.05)
+    lo, hi = m.rpm_band(2.0)
+    assert lo == pytest.approx(60 * 120 * 0.95 / 2) and hi == pytest.approx(60 * 120 * 1.05 / 2)
+    assert m.half_power_bw_hz == pytest.approx(12.0)
+
+
+def _sweep(watch, rpm_of_t, t_end, hop=0.032, bins=1025, level=None):
+    events = []
+    psd = np.full((1, bins), 1e-4)
+    for t in np.arange(0.0, t_end, hop):
+        now, mean = rpm_of_t(t), rpm_of_t(t - 0.128)
+        p = psd if level is None else level(t)
+        events += watch.update(np.array([t]), p, np.array([[now, now]]), np.array([[mean, mean]]))
+    return events
+
+
+@pytest.mark.parametrize("rate", [200.0, 800.0, 2000.0])
+def test_nearing_fires_before_the_band_at_sweep_rates_up_to_2000_rpm_per_s(rate):
+    profile = Profile("test", 2, "bungee", (Mode("arm flap", 150.0, 0.03, "pitch"),))
+    freqs = np.arange(1025) * (8000 / 2048)
+    watch = CrossingWatch(profile, 2, freqs, 0.032)
+    band_lo_rpm = 60 * 150 * 0.97  # order 1 enters the band here
+    t_in = (band_lo_rpm - 4000) / rate
+    ev = _sweep(watch, lambda t: 4000 + rate * max(t, 0.0), t_in + 0.2 * 9000 / rate + 1.0)
+    first_1x = [e for e in ev if e.order == 1.0 and e.motor == 1]
+    assert [e.state for e in first_1x][:2] == ["nearing", "crossing"]
+    assert first_1x[0].t_s < t_in and first_1x[0].rpm < band_lo_rpm
+    assert first_1x[0].band_rpm == pytest.approx((60 * 150 * 0.97, 60 * 150 * 1.03))
+    assert first_1x[2].state == "clear"
+
+
+def test_no_event_when_no_order_comes_near_a_mode():
+    profile = Profile("test", 2, "bungee", (Mode("plate", 450.0, 0.03, "roll"),))
+    freqs = np.arange(1025) * (8000 / 2048)
+    watch = CrossingWatch(profile, 2, freqs, 0.032)
+    # 1x 83..97 Hz, 2x and blade-pass (2 blades) 167..193, 4x 333..387: all outside 10 % of 450 Hz
+    ev = _sweep(watch, lambda t: 5000 + 80 * t, 10.0)
+    assert ev == []
+
+
+def test_steady_throttle_at_the_margin_does_not_chatter():
+    profile = Profile("test", 2, "bungee", (Mode("arm", 150.0, 0.03, "pitch"),))
+    freqs = np.arange(1025) * (8000 / 2048)
+    watch = CrossingWatch(profile, 2, freqs, 0.032)
+    rng = np.random.default_rng(3)
+    edge = 60 * 150 * 0.9  # 1x exactly at the 10 % margin
+    ev = _sweep(watch, lambda t: edge + 15 * rng.standard_normal() + (40 if t < 1 else 0) * (1 - t), 20.0)
+    per_channel = [e for e in ev if e.order == 1.0 and e.motor == 1]
+    assert len(per_channel) <= 2
+
+
+def _sim_engine(name, profile, seconds, telemetry=True, seed=2, script=True, overlap=0.875):
+    sc = load_scenario(name)
+    if not telemetry:
+        sc = replace(sc, motors=replace(sc.motors, telemetry=False))
+    stream = SimStream(sc, DeviceOptions(stream_at_boot=True, seed=seed, script=script), FaultPlan(),
+                       StreamOptions(realtime=False))
+    dec, asm, eng = fp.StreamDecoder(merge=True), Assembler(), Engine(EngineConfig(overlap=overlap), profile)
+    events, truth = [], []
+    while stream.time_s < seconds:
+        events += eng.feed(asm.feed(dec.feed(stream.produce_chunk()), host_s=stream.time_s))
+        truth.append((stream.time_s, stream.device.physics.motors.rpm.mean()))
+    return eng, events, np.array(truth)
+
+
+def test_simulated_sweep_crosses_the_front_arm_flap_inside_its_band():
+    profile = load_profile(PROFILES / "quillback7.toml")
+    eng, events, _ = _sim_engine("quillback7", profile, 24.0)
+    hits = [e for e in events if getattr(e, "state", "") == "crossing" and e.mode == "arm flap, front pair"
+            and e.order == 1.0]
+    assert hits, "the 1x order of the sweep must cross the 118 Hz mode"
+    lo, hi = hits[0].band_rpm
+    margin = 0.10 * 60 * 118
+    assert lo - margin <= hits[0].rpm <= hi + margin
+    bands = {(b.mode, b.order) for b in eng.bands()}
+    assert ("arm flap, front pair", 1.0) in bands and ("frame torsion", 1.0) in bands
+
+
+def test_rpm_from_the_spectrum_within_one_percent_without_telemetry():
+    profile = load_profile(PROFILES / "quillback7.toml")
+    sc = load_scenario("quillback7")
+    stream = SimStream(replace(sc, motors=replace(sc.motors, telemetry=False)),
+                       DeviceOptions(stream_at_boot=True, seed=4), FaultPlan(), StreamOptions(realtime=False))
+    dec, asm, eng = fp.StreamDecoder(merge=True), Assembler(), Engine(EngineConfig(), profile)
+    errors = []
+    while stream.time_s < 30.0:
+        eng.feed(asm.feed(dec.feed(stream.produce_chunk()), host_s=stream.time_s))
+        true = float(stream.device.physics.motors.rpm.mean())
+        snap = eng.snapshot()
+        if stream.time_s > 9.0 and snap.rpm.size and np.all(np.isfinite(snap.rpm)):
+            assert snap.rpm_estimated
+            errors.append(abs(snap.rpm[0] - true) / true)
+    assert len(errors) > 100 and np.median(errors) < 0.01 and np.percentile(errors, 90) < 0.02
+
+
+def test_a_loose_stack_shows_as_one_stray_peak():
+    good = load_profile(PROFILES / "wren5.toml")
+    eng, events, _ = _sim_engine("wren5_loose_stack", good, 40.0)
+    strays = eng.stray_peaks()
+    near = [p for p in strays if abs(p.freq_hz - 96.0) < 5.0]
+    assert len(near) == 1 and len([e for e in events if getattr(e, "freq_hz", None) == near[0].freq_hz]) == 1
+    eng2, _, _ = _sim_engine("wren5", good, 40.0)
+    assert not [p for p in eng2.stray_peaks() if abs(p.freq_hz - 96.0) < 5.0]
+
+
+@pytest.mark.parametrize(
+    ("data", "match"),
+    [
+        ({"modes": [{"freq_hz": 100, "damping_ratio": 0.9}]}, r"modes\[0\]\.damping_ratio: 0.9 is outside"),
+        ({"modes": [{"damping_ratio": 0.1}]}, r"modes\[0\]\.freq_hz: missing"),
+        ({"modes": [{"freq_hz": 100}]}, r"modes\[0\]\.damping_ratio: missing"),
+        ({"modes": [{"freq_hz": 100, "damping_ratio": 0.1, "axis": "up"}]}, r"modes\[0\]\.axis: 'up'"),
+        ({"airframe": {"blades": 0}}, r"airframe\.blades: 0 must be"),
+        ({"airframe": {"colour": 1}}, r"airframe\.colour: unknown field"),
+        ({"modes": [{"freq_hz": 100, "damping_ratio": 0.1, "half_power_bw_hz": 5}]}, "not both"),
+    ],
+)
+def test_profile_errors_name_the_field(data, match):
+    with pytest.raises(ProfileError, match=match):
+        parse_profile(data, "p.toml")
+
+
+def test_profile_round_trip_and_bandwidth_form(tmp_path):
+    p = parse_profile({"airframe": {"name": 'Pipit "3"', "blades": 4},
+                       "modes": [{"name": "duct", "freq_hz": 300, "half_power_bw_hz": 18, "axis": "yaw"}]})
+    assert p.modes[0].damping_ratio == pytest.approx(0.03)
+    f = tmp_path / "p.toml"
+    p.with_mode(Mode("new", 150.0, 0.02, "roll")).save(f)
+    back = load_profile(f)
+    assert [m.name for m in back.modes] == ["new", "duct"] and back.airframe == 'Pipit "3"' and back.blades == 4
+
+
+toml_values = st.one_of(st.integers(-5, 1000), st.floats(allow_nan=True), st.text(max_size=6), st.booleans(),
+                        st.lists(st.integers(), max_size=3))
+
+
+@given(st.dictionaries(st.sampled_from(["name", "freq_hz", "damping_ratio", "half_power_bw_hz", "axis", "x"]),
+                       toml_values, max_size=5), st.dictionaries(st.sampled_from(["name", "blades", "mounting"]),
+                                                                  toml_values, max_size=3))
+def test_any_profile_loads_or_fails_in_one_line(mode, air):
+    try:
+        p = parse_profile({"airframe": air, "modes": [mode]}, "f.toml")
+    except ProfileError as exc:
+        assert str(exc).startswith("f.toml: ") and "\n" not in str(exc)
+    else:
+        assert p.modes[0].freq_hz > 0 and 0 < p.modes[0].damping_ratio <= 0.5

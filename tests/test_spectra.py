@@ -1,0 +1,130 @@
+"""Rolling spectra against scipy.signal and published window figures."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy import signal
+
+from monitor.peaks import find_peaks, interpolate_bin
+from monitor.spectra import RollingSTFT, SpectrumConfig, window
+
+FS = 8000.0
+
+
+def _frames(cfg, x, cuts):
+    st_ = RollingSTFT(cfg)
+    out, amp, starts = [], [], []
+    prev = 0
+    for c in [*cuts, len(x)]:
+        fb = st_.push(x[prev:c])
+        prev = c
+        if fb is not None:
+            out.append(fb.psd)
+            amp.append(fb.amp)
+            starts.append(fb.start)
+    return np.concatenate(out), np.concatenate(amp), np.concatenate(starts)
+
+
+@settings(max_examples=25, deadline=None)
+@given(st.lists(st.integers(0, 12_000), max_size=12), st.sampled_from([(2048, 0.75), (2048, 0.875), (1024, 0.5)]))
+def test_frames_equal_short_time_fft_and_welch(cuts, shape):
+    # REFERENCES: ShortTimeFFT(scale_to='psd', fft_mode='onesided2X').spectrogram(x, detr='constant')
+    # interior slices, and their mean equals welch to ~1e-15.
+    nper, ov = shape
+    cfg = SpectrumConfig(FS, nper / FS, ov)
+    rng = np.random.default_rng(len(cuts))
+    x = rng.normal(size=(12_000, 3)) * [1.0, 3.0, 0.5] + [5.0, -2.0, 0.0]
+    psd, _, starts = _frames(cfg, x, sorted(cuts))
+    sft = signal.ShortTimeFFT.from_window("hann", FS, nper, cfg.noverlap, scale_to="psd", fft_mode="onesided2X")
+    ref = sft.spectrogram(x, detr="constant", axis=0)  # (bins, 3, slices)
+    # slice p covers samples p*hop - m_num_mid ... + nperseg; keep those wholly inside the signal
+    p = np.arange(sft.p_min, sft.p_max(x.shape[0]))
+    start = p * sft.hop - sft.m_num_mid
+    inside = (start >= 0) & (start + nper <= x.shape[0])
+    interior = ref[:, :, (p - sft.p_min)[inside]]
+    first = start[inside][0] // cfg.hop
+    ours = np.transpose(psd, (1, 2, 0))[:, :, first : first + interior.shape[2]]
+    assert interior.shape[2] >= 3
+    np.testing.assert_allclose(ours, interior, rtol=1e-9, atol=0)
+    f, w = signal.welch(x, fs=FS, nperseg=nper, noverlap=cfg.noverlap, axis=0)
+    np.testing.assert_allclose(psd.mean(axis=0), w, rtol=1e-9)
+    assert np.all(np.diff(starts) == cfg.hop)
+
+
+@pytest.mark.parametrize(
+    ("name", "cg", "enbw"),
+    # F. J. Harris, Proc. IEEE 66(1), 1978, Table 1 (REFERENCES.md, computed for periodic windows)
+    [("hann", 0.500, 1.500), ("flattop", 0.216, 3.770)],
+)
+def test_window_coherent_gain_and_enbw(name, cg, enbw):
+    w, s1, s2 = window(name, 4096)
+    assert s1 / 4096 == pytest.approx(cg, abs=0.001)
+    assert 4096 * s2 / s1**2 == pytest.approx(enbw, abs=0.005)
+    assert not w.flags.writeable
+
+
+@pytest.mark.parametrize("name", ["hann", "flattop"])
+def test_tone_amplitude_is_coherent_gain_corrected(name):
+    cfg = SpectrumConfig(FS, 2048 / FS, 0.5, name)
+    t = np.arange(2048) / FS
+    f0 = 50 * cfg.bin_hz  # on a bin centre
+    x = np.stack([3.0 * np.sin(2 * np.pi * f0 * t)] * 3, axis=1)
+    fb = RollingSTFT(cfg).push(x)
+    assert fb.amp[0, 50, 0] == pytest.approx(3.0, rel=1e-9)
+    # REFERENCES: welch(scaling='spectrum') peak equals A^2/2 for a tone on a bin centre
+    _, spec = signal.welch(x[:, 0], fs=FS, window=name, nperseg=2048, scaling="spectrum")
+    assert spec[50] == pytest.approx(9.0 / 2, rel=1e-9)
+
+
+def test_flattop_reads_amplitude_between_bins():
+    # Harris 1978 / REFERENCES: flat-top scalloping loss about 0.01 dB
+    cfg = SpectrumConfig(FS, 2048 / FS, 0.5, "flattop")
+    t = np.arange(2048) / FS
+    x = np.stack([2.0 * np.sin(2 * np.pi * 60.5 * cfg.bin_hz * t)] * 3, axis=1)
+    a = RollingSTFT(cfg).push(x).amp[0, :, 0].max()
+    assert 20 * np.log10(a / 2.0) == pytest.approx(0.0, abs=0.02)
+
+
+def test_white_noise_density_level():
+    # REFERENCES: white noise of variance s^2 has one-sided density 2 s^2 / fs
+    rng = np.random.default_rng(1)
+    x = rng.normal(0, 2.0, size=(400_000, 3))
+    psd, _, _ = _frames(SpectrumConfig(FS, 0.256, 0.5), x, [])
+    assert np.median(psd.mean(axis=0)[5:-5]) == pytest.approx(2 * 4.0 / FS, rel=0.02)
+
+
+@pytest.mark.parametrize("name", ["hann", "flattop"])
+@pytest.mark.parametrize("offset", [0.0, 0.13, 0.37, 0.5, 0.71, 0.92])
+def test_peak_frequency_within_a_tenth_of_a_bin(name, offset):
+    cfg = SpectrumConfig(FS, 2048 / FS, 0.5, name)
+    f0 = (73 + offset) * cfg.bin_hz
+    t = np.arange(2048) / FS
+    x = np.stack([np.sin(2 * np.pi * f0 * t + 0.3)] * 3, axis=1)
+    amp = RollingSTFT(cfg).push(x).amp[0, :, 0]
+    k = int(np.argmax(amp))
+    est = (k + float(interpolate_bin(amp, k, name))) * cfg.bin_hz
+    assert abs(est - f0) < 0.1 * cfg.bin_hz
+    peaks = find_peaks(amp, cfg.bin_hz, name, min_prominence_db=20)
+    assert abs(peaks[0][0] - f0) < 0.1 * cfg.bin_hz
+
+
+def test_reset_starts_a_new_segment_so_no_frame_spans_a_gap():
+    cfg = SpectrumConfig(FS, 0.256, 0.75)
+    st_ = RollingSTFT(cfg)
+    assert st_.push(np.zeros((2000, 3))) is None  # 2000 < 2048
+    st_.reset()
+    assert st_.push(np.zeros((100, 3))) is None  # the 2000 before the gap do not count
+    fb = st_.push(np.ones((2000, 3)))
+    assert fb is not None and fb.segment == 1 and fb.start.tolist() == [0]
+
+
+def test_config_errors_are_pinned():
+    with pytest.raises(ValueError, match=r"window='kaiser' not in"):
+        SpectrumConfig(FS, window="kaiser")
+    with pytest.raises(ValueError, match="overlap=0.99"):
+        SpectrumConfig(FS, overlap=0.99)
+    with pytest.raises(ValueError, match="need 16"):
+        SpectrumConfig(FS, window_s=0.001)
