@@ -3,7 +3,7 @@
 - pty: ``os.openpty()``; the slave path (``/dev/pts/N``) opens with ``serial.Serial`` like a
   real port. The slave is put in raw mode at once so no byte is echoed or translated.
 - TCP: one client at a time on ``socket://HOST:PORT``; a ``disconnect`` fault closes the client
-  and refuses connections for its duration.
+  and the listening socket, so connections are refused for its duration, then listens again.
 
 Both loops block in ``select`` with a short timeout (no busy loop), release bytes by the wall
 clock (real time) or as fast as the consumer reads (fast; the device then waits for the host's
@@ -101,14 +101,19 @@ def serve_tcp(
     stop: threading.Event | None = None,
 ) -> Stats:
     """Serve the stream to one TCP client at a time at ``host:port`` (0 picks a free port)."""
-    srv = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
-    srv.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
-    srv.bind((host, port))
-    srv.listen(1)
-    srv.setblocking(False)
+    def listen(at_port: int) -> socket.socket:
+        sock = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+        sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+        sock.bind((host, at_port))
+        sock.listen(1)
+        sock.setblocking(False)
+        return sock
+
+    srv: socket.socket | None = listen(port)
+    port = srv.getsockname()[1]
     stats = Stats()
     fast = not stream.options.realtime
-    on_ready(f"socket://{host}:{srv.getsockname()[1]}")
+    on_ready(f"socket://{host}:{port}")
     client: socket.socket | None = None
     pending = bytearray()
     t0 = time.monotonic()
@@ -116,22 +121,27 @@ def serve_tcp(
         while not (stop and stop.is_set()) and (duration is None or stream.time_s < duration):
             now_s = stream.time_s if fast else time.monotonic() - t0
             down = stream.disconnected(now_s)
-            if down and client is not None:
-                client.close()
-                client = None
-                pending.clear()
+            if down:
+                # the port is gone: the client is dropped and connections are refused
+                if client is not None:
+                    client.close()
+                    client = None
+                    pending.clear()
+                if srv is not None:
+                    srv.close()
+                    srv = None
+                stream.produce(now_s + (0.02 if fast else 0.0))  # the device runs on meanwhile
+                if not fast:
+                    time.sleep(POLL_S * 5)
+                continue
+            if srv is None:
+                srv = listen(port)
             if client is None:
-                if fast and down:
-                    stream.produce(now_s + 0.02)  # the device runs on while the link is down
-                    continue
                 if not fast:
                     stream.produce(time.monotonic() - t0)  # keep simulated time with the clock
                 r, _, _ = select.select([srv], [], [], POLL_S * 5)
                 if r:
                     conn, _ = srv.accept()
-                    if down:
-                        conn.close()
-                        continue
                     conn.setblocking(False)
                     conn.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
                     client = conn
@@ -163,5 +173,6 @@ def serve_tcp(
     finally:
         if client is not None:
             client.close()
-        srv.close()
+        if srv is not None:
+            srv.close()
     return stats

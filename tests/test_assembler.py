@@ -33,7 +33,9 @@ def run(data, chunks=(None,)):
 
 
 def blocks(n, start_seq=0, t0=0, count=16, value=164):
-    return [(start_seq + k * count, (t0 + k * count * 125) % 2**32, np.full((count, 3), value, np.int16)) for k in range(n)]
+    return [
+        (start_seq + k * count, (t0 + k * count * 125) % 2**32, np.full((count, 3), value, np.int16)) for k in range(n)
+    ]
 
 
 def test_counts_to_dps_and_erpm_to_rpm():
