@@ -1,7 +1,7 @@
 """Run spinrig's benchmarks: ``python3 benchmarks/run.py [NAME ...] [--quick]``.
 
 Each benchmark measures spinrig beside a baseline in the same run and prints ratios and medians.
-Names: decode, sim (more are added as the engine grows). Not part of the test suite: no test ever
+Names: decode, sim, engine. Not part of the test suite: no test ever
 asserts a wall-clock time.
 """
 
@@ -17,6 +17,7 @@ sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 BENCHES = {
     "decode": "benchmarks.bench_decode",
     "sim": "benchmarks.bench_sim",
+    "engine": "benchmarks.bench_engine",
 }
 
 

@@ -252,54 +252,45 @@ class Assembler:
             self.stats.drift_ppm = ppm if abs(ppm) < 5000 else None  # not real time (replay, fast sim)
 
 
-@dataclass
 class RpmTrack:
-    """The recent mechanical RPM of every motor, for frame windows (bounded rows)."""
+    """The recent mechanical RPM of every motor, for frame windows (bounded rows).
 
-    motors: int
-    capacity: int = 20_000
-    rate_hz: float = 500.0  #: expected MOTOR_STATE rate, to read only the rows a window needs
+    One ring of rows ``[t, rpm x M, throttle x M, not-valid x M]``, so a window costs one copy and
+    one cumulative sum.
+    """
 
-    def __post_init__(self):
+    def __init__(self, motors: int, capacity: int = 20_000, rate_hz: float = 500.0):
         from .ring import RingBuffer
 
-        self._t = RingBuffer(self.capacity)
-        self._rpm = RingBuffer(self.capacity, (self.motors,))
-        self._thr = RingBuffer(self.capacity, (self.motors,))
-        self._valid = RingBuffer(self.capacity, (self.motors,), dtype=bool)
+        self.motors = motors
+        self.rate_hz = rate_hz  #: expected MOTOR_STATE rate, to read only the rows a window needs
+        self._ring = RingBuffer(capacity, (1 + 3 * motors,))
 
     def add(self, u: MotorUpdate) -> None:
         if u.rpm.shape[1] != self.motors:
             return
-        self._t.append(u.t_s)
-        self._rpm.append(u.rpm)
-        self._thr.append(u.throttle)
-        self._valid.append(u.valid)
+        self._ring.append(np.column_stack([u.t_s, u.rpm, u.throttle, ~u.valid]))
 
     def window(self, t0: np.ndarray, t1: np.ndarray):
         """Mean RPM (F, motors), latest RPM (F, motors), mean throttle (F, motors) and all-valid (F, motors)
-        over each window [t0, t1]; NaN where no reading falls in the window."""
-        f = len(t0)
-        newest = self._t.last(1)
-        span = (float(newest[0]) - float(np.min(t0))) if newest.size else 0.0
-        keep = int(max(span, 0.0) * self.rate_hz * 1.25) + 64
-        t = self._t.last(keep)
-        if t.size == 0:
-            nan = np.full((f, self.motors), np.nan)
-            return nan, nan, nan, np.zeros((f, self.motors), bool)
-        rpm = self._rpm.last(keep)
-        thr = self._thr.last(keep)
-        valid = self._valid.last(keep)
+        over each window [t0, t1) (readings at t1 itself are left out: a device sending in time
+        order may send them after the samples up to t1); NaN where no reading falls in it."""
+        f, m = len(t0), self.motors
+        newest = self._ring.last(1)
+        if newest.size == 0:
+            nan = np.full((f, m), np.nan)
+            return nan, nan, nan, np.zeros((f, m), bool)
+        span = float(newest[0, 0]) - float(np.min(t0))
+        rows = self._ring.last(int(max(span, 0.0) * self.rate_hz * 1.25) + 64)
+        t = rows[:, 0]
         lo = np.searchsorted(t, t0, side="left")
-        hi = np.searchsorted(t, t1, side="right")
-        c_rpm = np.concatenate([np.zeros((1, self.motors)), np.cumsum(rpm, axis=0)])
-        c_thr = np.concatenate([np.zeros((1, self.motors)), np.cumsum(thr, axis=0)])
-        c_bad = np.concatenate([np.zeros((1, self.motors)), np.cumsum(~valid, axis=0)])
+        hi = np.searchsorted(t, t1, side="left")
+        c = np.concatenate([np.zeros((1, rows.shape[1] - 1)), np.cumsum(rows[:, 1:], axis=0)])
         n = (hi - lo)[:, None]
         with np.errstate(invalid="ignore", divide="ignore"):
-            mean = np.where(n > 0, (c_rpm[hi] - c_rpm[lo]) / n, np.nan)
-            mthr = np.where(n > 0, (c_thr[hi] - c_thr[lo]) / n, np.nan)
-        ok = (n > 0) & ((c_bad[hi] - c_bad[lo]) == 0)
-        last_i = np.clip(hi - 1, 0, len(t) - 1)
-        latest = np.where(n > 0, rpm[last_i], np.nan)
+            sums = c[hi] - c[lo]
+            mean = np.where(n > 0, sums[:, :m] / n, np.nan)
+            mthr = np.where(n > 0, sums[:, m : 2 * m] / n, np.nan)
+        ok = (n > 0) & (sums[:, 2 * m :] == 0)
+        latest = np.where(n > 0, rows[np.clip(hi - 1, 0, len(t) - 1), 1 : 1 + m], np.nan)
         return mean, latest, mthr, ok

@@ -105,12 +105,29 @@ class Band:
         }
 
 
+def _transition_table() -> np.ndarray:
+    """new state = table[state, condition bits]: bit 0 inside the margin and closing in, bit 1
+    inside the band or hot (level over the floor inside the margin), bit 2 past the nearing exit,
+    bit 3 past the crossing exit (far from the band and cooled, or out of the margin)."""
+    t = np.zeros((3, 16), dtype=np.int8)
+    for c in range(16):
+        approach, hit, gone, left = c & 1, c & 2, c & 4, c & 8
+        t[CLEAR, c] = CROSSING if hit else NEARING if approach else CLEAR
+        t[NEARING, c] = CROSSING if hit else CLEAR if gone else NEARING
+        t[CROSSING, c] = CLEAR if left else CROSSING
+    return t
+
+
+_TRANSITIONS = _transition_table()
+
+
 class CrossingWatch:
     def __init__(self, profile: Profile, motors: int, freqs: np.ndarray, hop_s: float):
         self.profile = profile
         self.motors = motors
         modes = profile.modes
         self.mult = order_multipliers(profile.blades)
+        self._mult60 = (self.mult / 60.0)[None, None, None, :]
         self.f_mode = np.array([m.freq_hz for m in modes])[:, None, None]  # (N, 1, 1)
         self.zeta = np.array([m.damping_ratio for m in modes])[:, None, None]
         self.half_band = self.f_mode * self.zeta
@@ -141,7 +158,11 @@ class CrossingWatch:
         self._band_idx = np.array(padded).reshape(len(modes), -1)
         #: (bins, modes): the floor is the mean level in dB over 0.6..1.4 f_n outside the band
         self._floor_w = floor_w
-        self._open: dict[tuple[int, int, int], Band] = {}
+        # open bands, per channel: RPM low/high and peak level while in the crossing state
+        self._b_open = np.zeros(shape, dtype=bool)
+        self._b_lo = np.zeros(shape)
+        self._b_hi = np.zeros(shape)
+        self._b_peak = np.zeros(shape)
         self.bands: list[Band] = []
 
     def levels(self, psd_sum: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -157,84 +178,79 @@ class CrossingWatch:
         if not modes:
             return events
         levels, floors = self.levels(psd_sum)
+        # geometry of every frame at once: order frequencies against the modes, (F, N, M, K)
+        f_now = rpm_latest[:, None, :, None] * self._mult60
+        f_avg = np.where(np.isfinite(rpm_mean), rpm_mean, rpm_latest)[:, None, :, None] * self._mult60
+        d_now = np.abs(f_now - self.f_mode)
+        closing = d_now < np.abs(f_avg - self.f_mode) - 1e-6
+        in_margin = d_now <= self.margin
+        base = (in_margin & closing).astype(np.int8)
+        base |= (d_now <= self.half_band).astype(np.int8) << 1
+        base |= (d_now > EXIT_MARGIN * self.margin).astype(np.int8) << 2
+        far = d_now > EXIT_BAND * self.half_band
+        finite = np.all(np.isfinite(rpm_latest), axis=1)
         for i in range(len(t_s)):
             level, floor = levels[i], floors[i]
-            first = np.isnan(self.floor_db)
-            self.floor_db = np.where(first, floor, self.floor_db + self.alpha * (floor - self.floor_db))
-            self.level_db = np.where(first, level, self.level_db + self.level_alpha * (level - self.level_db))
-            level = self.level_db
-            r_now, r_mean = rpm_latest[i], rpm_mean[i]
-            if not np.all(np.isfinite(r_now)):
+            if np.isnan(self.floor_db[0]):
+                self.floor_db, self.level_db = floor.copy(), level.copy()
+            else:
+                self.floor_db += self.alpha * (floor - self.floor_db)
+                self.level_db += self.level_alpha * (level - self.level_db)
+            if not finite[i]:
                 continue
-            f_now = r_now[None, :, None] / 60.0 * self.mult[None, None, :]  # (1, M, K)
-            f_avg = np.where(np.isfinite(r_mean), r_mean, r_now)[None, :, None] / 60.0 * self.mult[None, None, :]
-            d_now = np.abs(f_now - self.f_mode)
-            d_avg = np.abs(f_avg - self.f_mode)
-            closing = d_now < d_avg - 1e-6
-            in_margin = d_now <= self.margin
-            in_band = d_now <= self.half_band
-            over = (level - self.floor_db)[:, None, None]
-            hot = in_margin & (over >= LEVEL_OVER_FLOOR_DB)
-            cool = over < LEVEL_OVER_FLOOR_DB - RELEASE_DB
+            over = (self.level_db - self.floor_db)[:, None, None]
+            cond = base[i] | ((in_margin[i] & (over >= LEVEL_OVER_FLOOR_DB)).astype(np.int8) << 1)
+            cond |= (far[i] & ((over < LEVEL_OVER_FLOOR_DB - RELEASE_DB) | ~in_margin[i])).astype(np.int8) << 3
             s = self.state
-            new = s.copy()
-            new[(s == CLEAR) & in_margin & closing] = NEARING
-            new[(s != CROSSING) & (in_band | hot)] = CROSSING
-            new[(s == NEARING) & (d_now > EXIT_MARGIN * self.margin)] = CLEAR
-            leave = (s == CROSSING) & (d_now > EXIT_BAND * self.half_band) & (cool | ~in_margin)
-            new[leave] = CLEAR
+            new = _TRANSITIONS[s, cond]
             # rises need PERSIST_FRAMES consecutive proposals (a spin-up flashing past is no crossing)
             rise = new > s
-            same = rise & (new == self._proposed)
-            self._runs = np.where(same, self._runs + 1, np.where(rise, 1, 0))
-            self._proposed = np.where(rise, new, 0)
-            new = np.where(rise & (self._runs < PERSIST_FRAMES), s, new).astype(np.int8)
-            self._track_bands(new, r_now, level, t_s[i])
-            for n, m, k in zip(*np.nonzero(new != s), strict=True):
-                mode = modes[n]
-                events.append(
-                    CrossingEvent(
-                        float(t_s[i]),
-                        STATE_NAMES[new[n, m, k]],
-                        mode.name,
-                        mode.freq_hz,
-                        int(m) + 1,
-                        float(self.mult[k]),
-                        order_label(float(self.mult[k]), self.profile.blades),
-                        float(r_now[m]),
-                        float(f_now[0, m, k]),
-                        float(level[n]),
-                        float(self.floor_db[n]),
-                        mode.rpm_band(float(self.mult[k])),
+            if rise.any() or self._runs.any():
+                self._runs = np.where(rise & (new == self._proposed), self._runs + 1, rise.astype(np.int16))
+                self._proposed = np.where(rise, new, 0).astype(np.int8)
+                new = np.where(rise & (self._runs < PERSIST_FRAMES), s, new).astype(np.int8)
+            if self._b_open.any() or (new == CROSSING).any():
+                self._track_bands(new, rpm_latest[i], self.level_db, t_s[i])
+            changed = new != s
+            if changed.any():
+                r_now = rpm_latest[i]
+                for n, m, k in zip(*np.nonzero(changed), strict=True):
+                    mode = modes[n]
+                    mult = float(self.mult[k])
+                    events.append(
+                        CrossingEvent(
+                            float(t_s[i]), STATE_NAMES[new[n, m, k]], mode.name, mode.freq_hz, int(m) + 1, mult,
+                            order_label(mult, self.profile.blades), float(r_now[m]), float(f_now[i, 0, m, k]),
+                            float(self.level_db[n]), float(self.floor_db[n]), mode.rpm_band(mult),
+                        )
                     )
-                )
             self.state = new
         return events
 
+    def _band(self, n: int, m: int, k: int) -> Band:
+        mode = self.profile.modes[n]
+        mult = float(self.mult[k])
+        return Band(mode.name, mode.freq_hz, mult, order_label(mult, self.profile.blades), int(m) + 1,
+                    float(self._b_lo[n, m, k]), float(self._b_hi[n, m, k]), float(self._b_peak[n, m, k]))
+
     def _track_bands(self, new: np.ndarray, rpm: np.ndarray, level: np.ndarray, t: float) -> None:
-        modes = self.profile.modes
-        for key in list(self._open):
-            n, m, k = key
-            if new[n, m, k] != CROSSING:
-                self.bands.append(self._open.pop(key))
-        for n, m, k in zip(*np.nonzero(new == CROSSING), strict=True):
-            key = (int(n), int(m), int(k))
-            r = float(rpm[m])
-            b = self._open.get(key)
-            if b is None:
-                mode = modes[n]
-                mult = float(self.mult[k])
-                self._open[key] = Band(mode.name, mode.freq_hz, mult, order_label(mult, self.profile.blades),
-                                       int(m) + 1, r, r, float(level[n]))
-            else:
-                b.rpm_low = min(b.rpm_low, r)
-                b.rpm_high = max(b.rpm_high, r)
-                b.peak_db = max(b.peak_db, float(level[n]))
+        crossing = new == CROSSING
+        closing = self._b_open & ~crossing
+        if closing.any():
+            self.bands.extend(self._band(n, m, k) for n, m, k in zip(*np.nonzero(closing), strict=True))
+        r = np.broadcast_to(rpm[None, :, None], new.shape)
+        lv = np.broadcast_to(level[:, None, None], new.shape)
+        opening = crossing & ~self._b_open
+        self._b_lo = np.where(opening, r, np.where(crossing, np.minimum(self._b_lo, r), self._b_lo))
+        self._b_hi = np.where(opening, r, np.where(crossing, np.maximum(self._b_hi, r), self._b_hi))
+        self._b_peak = np.where(opening, lv, np.where(crossing, np.maximum(self._b_peak, lv), self._b_peak))
+        self._b_open = crossing
 
     def all_bands(self) -> list[Band]:
         """Closed bands and the ones still open, merged per (mode, order) over all motors."""
         merged: dict[tuple[str, float], Band] = {}
-        for b in [*self.bands, *self._open.values()]:
+        still = [self._band(n, m, k) for n, m, k in zip(*np.nonzero(self._b_open), strict=True)]
+        for b in [*self.bands, *still]:
             key = (b.mode, b.order)
             m = merged.get(key)
             if m is None:

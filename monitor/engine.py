@@ -109,7 +109,7 @@ class Engine:
         self.estimator = RpmEstimator(freqs, self.profile.blades, window=self.config.window)
         rate = max(1.0, float(info.motor_state_rate_hz))
         self.rpm_track = RpmTrack(motors, capacity=max(1000, int(rate * 20)), rate_hz=rate)
-        self._stray_every = max(1, int(round(0.1 / hop_s)))  # the stray search runs at about 10 Hz
+        self._stray_every = max(1, int(round(0.2 / hop_s)))  # the stray search runs at about 5 Hz
         self._reset_views()
         bins = freqs.shape[0]
         self.waterfall = RingBuffer(self.config.waterfall_rows, (bins, 3), dtype=np.float32)
@@ -191,7 +191,8 @@ class Engine:
         motors = self.info.motor_count
         psd_sum = fb.psd.sum(axis=2)
         if motors:
-            mean, latest, thr, valid = self.rpm_track.window(t0, t1)
+            # readings strictly before the frame's last sample: all of them arrived before it did
+            mean, latest, thr, valid = self.rpm_track.window(t0, t1 - 1.0 / fs)
         else:
             mean = latest = thr = np.full((f, 0), np.nan)
             valid = np.zeros((f, 0), bool)
@@ -204,20 +205,24 @@ class Engine:
                 latest[i] = r
                 estimated[i] = True
         ofreq = order_freqs(mean, self.profile.blades)
-        oamp, _ = order_amplitudes(fb.amp, ofreq, spec.bin_hz)
+        oamp, _ = order_amplitudes(fb.psd, ofreq, spec.bin_hz, amp_factor=fb.amp_factor)
         # averaged spectrum and peak hold
         alpha = 1.0 - np.exp(-(spec.hop / fs) / self.config.ema_tau_s)
+        gap_first = self._gap_pending
         for i in range(f):
             p = fb.psd[i]
-            if self.ema is None or self._gap_pending:
+            if self.ema is None or (gap_first and i == 0):
                 self.ema = p.copy()
                 self.peak = p.copy() if self.peak is None else np.maximum(self.peak, p)
             else:
                 self.ema += alpha * (p - self.ema)
                 np.maximum(self.peak, p, out=self.peak)
-            self.waterfall.append(p.astype(np.float32)[None])
-            self.waterfall_t.append(np.array([[t1[i], 1.0 if self._gap_pending else 0.0]]))
-            self._gap_pending = False
+        self.waterfall.append(fb.psd.astype(np.float32))
+        marks = np.zeros((f, 2))
+        marks[:, 0] = t1
+        marks[0, 1] = 1.0 if gap_first else 0.0
+        self.waterfall_t.append(marks)
+        self._gap_pending = False
         if self.crossing is not None and motors:
             new.extend(self.crossing.update(t1, psd_sum, latest, mean))
         if self.stray is not None:
@@ -226,7 +231,7 @@ class Engine:
                     new.extend(self.stray.update(float(t1[i]), fb.psd[i], mean[i] if motors else np.zeros(0)))
         self.frames += f
         self.last_psd = fb.psd[-1]
-        self.last_amp = fb.amp[-1]
+        self.last_amp = np.sqrt(fb.psd[-1]) * fb.amp_factor[:, None]
         self.last_rpm = mean[-1]
         self.last_thr = thr[-1]
         self.last_valid = valid[-1]

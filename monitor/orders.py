@@ -31,12 +31,15 @@ def order_freqs(rpm: np.ndarray, blades: int) -> np.ndarray:
     return np.asarray(rpm, dtype=float)[..., None] / 60.0 * order_multipliers(blades)
 
 
-def order_amplitudes(amp: np.ndarray, freqs: np.ndarray, bin_hz: float, search_bins: int = 1):
+def order_amplitudes(amp: np.ndarray, freqs: np.ndarray, bin_hz: float, search_bins: int = 1,
+                     amp_factor: np.ndarray | None = None):
     """Amplitude at each order frequency.
 
-    ``amp`` (F, bins, C) amplitude spectra in deg/s; ``freqs`` (F, motors, orders) in Hz (NaN
-    where unknown). Returns (rss (F, motors, orders) deg/s, axis (F, motors, orders) of the largest
-    channel): the largest bin within +-``search_bins`` of each order, root-sum-square over axes.
+    ``amp`` (F, bins, C) amplitude spectra in deg/s, or PSD when ``amp_factor`` (bins,) is given
+    (amplitude = sqrt(PSD) x factor, evaluated only at the bins needed); ``freqs`` (F, motors,
+    orders) in Hz (NaN where unknown). Returns (rss (F, motors, orders) deg/s, axis (F, motors,
+    orders) of the largest channel): the largest bin within +-``search_bins`` of each order,
+    root-sum-square over axes.
     """
     f, nbins, c = amp.shape
     k = np.rint(np.nan_to_num(freqs, nan=-1.0) / bin_hz).astype(np.int64)  # (F, M, K)
@@ -44,6 +47,8 @@ def order_amplitudes(amp: np.ndarray, freqs: np.ndarray, bin_hz: float, search_b
     idx = np.clip(k[..., None] + offsets, 0, nbins - 1)  # (F, M, K, O)
     rows = np.arange(f)[:, None, None, None]
     vals = amp[rows, idx, :]  # (F, M, K, O, C)
+    if amp_factor is not None:
+        vals = np.sqrt(vals) * amp_factor[idx][..., None]
     per_axis = vals.max(axis=3)  # (F, M, K, C)
     rss = np.sqrt(np.sum(per_axis**2, axis=-1))
     axis = np.argmax(per_axis, axis=-1)

@@ -85,6 +85,11 @@ class CaptureReplay:
         self.session = Session(engine)
         self.speed = speed
 
+    #: decoded chunks are pooled until about this much stream (bytes at 8 kHz: ~0.5 s) before the
+    #: assembler and engine see them; results do not depend on it (nothing downstream depends on
+    #: how the stream was cut), only the per-call overhead does
+    POOL_BYTES = 40_000
+
     def __iter__(self) -> Iterator[list]:
         import firmware_protocol as fp
 
@@ -92,14 +97,34 @@ class CaptureReplay:
         start_wall = time.monotonic()
         chunks = self.contents.chunks
         first_host = chunks[0].host_s if chunks else 0.0
+        pool: list[bytes] = []
+        pooled = 0
+        pool_host = 0.0
+
+        def flush():
+            nonlocal pool, pooled
+            if not pool:
+                return []
+            data = b"".join(pool)
+            pool, pooled = [], 0
+            return self.session.feed_bytes(dec, data, pool_host)
+
         for ch in chunks:
             if self.speed:
                 delay = start_wall + (ch.host_s - first_host) / self.speed - time.monotonic()
                 if delay > 0:
+                    yield flush()
                     time.sleep(delay)
             if ch.kind == "D":
-                yield self.session.feed_bytes(dec, ch.payload, ch.host_s)
+                if not pool:
+                    pool_host = ch.host_s
+                pool.append(ch.payload)
+                pooled += len(ch.payload)
+                if pooled >= self.POOL_BYTES:
+                    yield flush()
             elif ch.kind == "G":
+                yield flush()
                 dec.reset()
                 yield self.engine.feed(self.session.assembler.mark_reconnect(ch.host_s))
+        yield flush()
         self.decoder = dec

@@ -98,13 +98,18 @@ class FrameBatch:
     """Consecutive frames of one segment.
 
     ``start`` (F,) sample index of each frame's first sample within the segment;
-    ``psd`` (F, bins, C) in (deg/s)^2/Hz; ``amp`` (F, bins, C) in deg/s.
+    ``psd`` (F, bins, C) in (deg/s)^2/Hz; ``amp`` (F, bins, C) in deg/s, computed from the PSD
+    when asked (amp = sqrt(psd) x ``amp_factor`` per bin), since most frames need it at few bins.
     """
 
     segment: int
     start: np.ndarray
     psd: np.ndarray
-    amp: np.ndarray
+    amp_factor: np.ndarray  #: (bins,) amplitude per sqrt(PSD)
+
+    @property
+    def amp(self) -> np.ndarray:
+        return np.sqrt(self.psd) * self.amp_factor[None, :, None]
 
     def __len__(self) -> int:
         return int(self.start.shape[0])
@@ -121,14 +126,15 @@ class RollingSTFT:
         factor = one_sided_factor(n)
         self.psd_scale = factor / (config.fs_hz * s2)
         self.amp_scale = factor / s1
+        self.amp_factor = self.amp_scale / np.sqrt(self.psd_scale)
         self.segment = -1
         self.reset()
 
     def reset(self) -> None:
         """Start a new segment (after a gap): buffered samples are dropped."""
         self.segment += 1
-        self._buf = np.empty((0, self.channels), dtype=np.float64)
-        self._buf_start = 0  # segment index of _buf[0]
+        self._buf = np.empty((self.channels, 0), dtype=np.float64)  # (C, samples): rows contiguous
+        self._buf_start = 0  # segment index of _buf[:, 0]
         self._next = 0  # segment index where the next frame starts
         self.samples = 0  # samples pushed into this segment
 
@@ -136,22 +142,20 @@ class RollingSTFT:
         """Add samples (n, C) in deg/s; returns every frame completed by them, or None."""
         n_per = self.config.nperseg
         hop = self.config.hop
-        x = np.asarray(samples, dtype=np.float64)
-        self._buf = np.concatenate([self._buf, x]) if self._buf.size else x.copy()
-        self.samples += x.shape[0]
-        end = self._buf_start + self._buf.shape[0]
+        x = np.asarray(samples, dtype=np.float64).T
+        self._buf = np.concatenate([self._buf, x], axis=1) if self._buf.size else np.ascontiguousarray(x)
+        self.samples += x.shape[1]
+        end = self._buf_start + self._buf.shape[1]
         if end - self._next < n_per:
             return None
         starts = np.arange(self._next, end - n_per + 1, hop)
         rel = starts - self._buf_start
-        frames = sliding_window_view(self._buf, n_per, axis=0)[rel]  # (F, C, N) view, no copy yet
+        frames = sliding_window_view(self._buf, n_per, axis=1)[:, rel]  # (C, F, N) view, rows contiguous
         frames = frames - frames.mean(axis=2, keepdims=True)
-        spec = np.fft.rfft(frames * self.win, axis=2)  # (F, C, bins)
+        spec = np.fft.rfft(frames * self.win, axis=2)  # (C, F, bins)
         mag2 = spec.real**2 + spec.imag**2
-        psd = np.transpose(mag2 * self.psd_scale, (0, 2, 1))
-        amp = np.transpose(np.sqrt(mag2) * self.amp_scale, (0, 2, 1))
+        psd = np.transpose(mag2, (1, 2, 0)) * self.psd_scale[None, :, None]  # (F, bins, C)
         self._next = int(starts[-1] + hop)
-        keep_from = self._next - self._buf_start
-        self._buf = self._buf[keep_from:]
+        self._buf = self._buf[:, self._next - self._buf_start :]
         self._buf_start = self._next
-        return FrameBatch(self.segment, starts, psd, amp)
+        return FrameBatch(self.segment, starts, psd, self.amp_factor)

@@ -18,7 +18,7 @@ from .profile import Profile
 
 AXIS_NAMES = ("roll", "pitch", "yaw")
 MIN_OVER_FLOOR_DB = 8.0
-MIN_HITS = 4  #: searches (about 10 a second) in which the peak was seen
+MIN_HITS = 3  #: searches (about 5 a second) in which the peak was seen
 MIN_SPAN_S = 0.5
 MIN_RPM_CHANGE = 0.05  #: relative change of the mean motor speed while the peak held still
 FLOOR_BINS = 41

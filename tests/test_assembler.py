@@ -117,6 +117,7 @@ def test_rpm_track_window_means():
     rpm = np.stack([np.arange(50) * 10.0, np.full(50, 7.0)], axis=1)
     tr.add(MotorUpdate(t, rpm, np.zeros((50, 2)), np.ones((50, 2), bool)))
     mean, latest, _, ok = tr.window(np.array([0.1]), np.array([0.19]))
-    assert mean[0].tolist() == pytest.approx([145.0, 7.0]) and latest[0].tolist() == [190.0, 7.0] and ok.all()
+    # [0.10, 0.19): readings 10..18, the one at 0.19 itself is left out
+    assert mean[0].tolist() == pytest.approx([140.0, 7.0]) and latest[0].tolist() == [180.0, 7.0] and ok.all()
     mean, _, _, ok = tr.window(np.array([5.0]), np.array([6.0]))
     assert np.isnan(mean).all() and not ok.any()
