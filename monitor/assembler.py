@@ -255,42 +255,46 @@ class Assembler:
 class RpmTrack:
     """The recent mechanical RPM of every motor, for frame windows (bounded rows).
 
-    One ring of rows ``[t, rpm x M, throttle x M, not-valid x M]``, so a window costs one copy and
-    one cumulative sum.
+    Rows ``[t, rpm x M, throttle x M, not-valid x M]`` of the last ``keep_s`` seconds, in one
+    array, so a window costs two binary searches and a slice.
     """
 
-    def __init__(self, motors: int, capacity: int = 20_000, rate_hz: float = 500.0):
-        from .ring import RingBuffer
-
+    def __init__(self, motors: int, capacity: int = 20_000, rate_hz: float = 500.0, keep_s: float = 4.0):
         self.motors = motors
-        self.rate_hz = rate_hz  #: expected MOTOR_STATE rate, to read only the rows a window needs
-        self._ring = RingBuffer(capacity, (1 + 3 * motors,))
+        self.rate_hz = rate_hz
+        self.capacity = capacity
+        self.keep_s = keep_s
+        self._rows = np.zeros((0, 1 + 3 * motors))
 
     def add(self, u: MotorUpdate) -> None:
-        if u.rpm.shape[1] != self.motors:
+        if u.rpm.shape[1] != self.motors or u.t_s.size == 0:
             return
-        self._ring.append(np.column_stack([u.t_s, u.rpm, u.throttle, ~u.valid]))
+        rows = np.column_stack([u.t_s, u.rpm, u.throttle, ~u.valid])
+        allr = np.concatenate([self._rows, rows]) if self._rows.size else rows
+        cut = np.searchsorted(allr[:, 0], allr[-1, 0] - self.keep_s)
+        self._rows = allr[max(cut, allr.shape[0] - self.capacity) :]
 
     def window(self, t0: np.ndarray, t1: np.ndarray):
         """Mean RPM (F, motors), latest RPM (F, motors), mean throttle (F, motors) and all-valid (F, motors)
         over each window [t0, t1) (readings at t1 itself are left out: a device sending in time
         order may send them after the samples up to t1); NaN where no reading falls in it."""
         f, m = len(t0), self.motors
-        newest = self._ring.last(1)
-        if newest.size == 0:
-            nan = np.full((f, m), np.nan)
-            return nan, nan, nan, np.zeros((f, m), bool)
-        span = float(newest[0, 0]) - float(np.min(t0))
-        rows = self._ring.last(int(max(span, 0.0) * self.rate_hz * 1.25) + 64)
+        mean = np.full((f, m), np.nan)
+        mthr = np.full((f, m), np.nan)
+        latest = np.full((f, m), np.nan)
+        ok = np.zeros((f, m), bool)
+        rows = self._rows
+        if rows.shape[0] == 0:
+            return mean, latest, mthr, ok
         t = rows[:, 0]
         lo = np.searchsorted(t, t0, side="left")
         hi = np.searchsorted(t, t1, side="left")
-        c = np.concatenate([np.zeros((1, rows.shape[1] - 1)), np.cumsum(rows[:, 1:], axis=0)])
-        n = (hi - lo)[:, None]
-        with np.errstate(invalid="ignore", divide="ignore"):
-            sums = c[hi] - c[lo]
-            mean = np.where(n > 0, sums[:, :m] / n, np.nan)
-            mthr = np.where(n > 0, sums[:, m : 2 * m] / n, np.nan)
-        ok = (n > 0) & (sums[:, 2 * m :] == 0)
-        latest = np.where(n > 0, rows[np.clip(hi - 1, 0, len(t) - 1), 1 : 1 + m], np.nan)
+        for i in range(f):
+            if hi[i] > lo[i]:
+                blk = rows[lo[i] : hi[i]]
+                avg = blk.mean(axis=0)
+                mean[i] = avg[1 : 1 + m]
+                mthr[i] = avg[1 + m : 1 + 2 * m]
+                latest[i] = blk[-1, 1 : 1 + m]
+                ok[i] = avg[1 + 2 * m :] == 0
         return mean, latest, mthr, ok

@@ -238,12 +238,17 @@ class CrossingWatch:
         closing = self._b_open & ~crossing
         if closing.any():
             self.bands.extend(self._band(n, m, k) for n, m, k in zip(*np.nonzero(closing), strict=True))
-        r = np.broadcast_to(rpm[None, :, None], new.shape)
-        lv = np.broadcast_to(level[:, None, None], new.shape)
+        r = rpm[None, :, None]
+        lv = level[:, None, None]
         opening = crossing & ~self._b_open
-        self._b_lo = np.where(opening, r, np.where(crossing, np.minimum(self._b_lo, r), self._b_lo))
-        self._b_hi = np.where(opening, r, np.where(crossing, np.maximum(self._b_hi, r), self._b_hi))
-        self._b_peak = np.where(opening, lv, np.where(crossing, np.maximum(self._b_peak, lv), self._b_peak))
+        cont = crossing & self._b_open
+        np.minimum(self._b_lo, r, out=self._b_lo, where=cont)
+        np.maximum(self._b_hi, r, out=self._b_hi, where=cont)
+        np.maximum(self._b_peak, lv, out=self._b_peak, where=cont)
+        if opening.any():
+            np.copyto(self._b_lo, r, where=opening)
+            np.copyto(self._b_hi, r, where=opening)
+            np.copyto(self._b_peak, lv, where=opening)
         self._b_open = crossing
 
     def all_bands(self) -> list[Band]:

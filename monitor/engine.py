@@ -205,7 +205,7 @@ class Engine:
                 latest[i] = r
                 estimated[i] = True
         ofreq = order_freqs(mean, self.profile.blades)
-        oamp, _ = order_amplitudes(fb.psd, ofreq, spec.bin_hz, amp_factor=fb.amp_factor)
+        oamp, _ = order_amplitudes(fb.psd, ofreq, spec.bin_hz, amp_factor=fb.amp_factor, with_axis=False)
         # averaged spectrum and peak hold
         alpha = 1.0 - np.exp(-(spec.hop / fs) / self.config.ema_tau_s)
         gap_first = self._gap_pending
@@ -231,7 +231,7 @@ class Engine:
                     new.extend(self.stray.update(float(t1[i]), fb.psd[i], mean[i] if motors else np.zeros(0)))
         self.frames += f
         self.last_psd = fb.psd[-1]
-        self.last_amp = np.sqrt(fb.psd[-1]) * fb.amp_factor[:, None]
+        self._amp_factor = fb.amp_factor  # amplitude of the newest frame is derived when a view asks
         self.last_rpm = mean[-1]
         self.last_thr = thr[-1]
         self.last_valid = valid[-1]
@@ -257,7 +257,7 @@ class Engine:
                 fs_hz=self.spec.fs_hz if self.spec else 0.0,
                 freqs=freqs,
                 psd=cp(self.last_psd),
-                amp=cp(self.last_amp),
+                amp=None if self.last_psd is None else np.sqrt(self.last_psd) * self._amp_factor[:, None],
                 ema=cp(self.ema),
                 peak=cp(self.peak),
                 rpm=self.last_rpm.copy(),

@@ -32,7 +32,7 @@ def order_freqs(rpm: np.ndarray, blades: int) -> np.ndarray:
 
 
 def order_amplitudes(amp: np.ndarray, freqs: np.ndarray, bin_hz: float, search_bins: int = 1,
-                     amp_factor: np.ndarray | None = None):
+                     amp_factor: np.ndarray | None = None, with_axis: bool = True):
     """Amplitude at each order frequency.
 
     ``amp`` (F, bins, C) amplitude spectra in deg/s, or PSD when ``amp_factor`` (bins,) is given
@@ -42,15 +42,18 @@ def order_amplitudes(amp: np.ndarray, freqs: np.ndarray, bin_hz: float, search_b
     root-sum-square over axes.
     """
     f, nbins, c = amp.shape
-    k = np.rint(np.nan_to_num(freqs, nan=-1.0) / bin_hz).astype(np.int64)  # (F, M, K)
-    offsets = np.arange(-search_bins, search_bins + 1)
-    idx = np.clip(k[..., None] + offsets, 0, nbins - 1)  # (F, M, K, O)
-    rows = np.arange(f)[:, None, None, None]
-    vals = amp[rows, idx, :]  # (F, M, K, O, C)
+    k = np.rint(np.where(np.isfinite(freqs), freqs, -1.0) / bin_hz).astype(np.int64)  # (F, M, K)
     if amp_factor is not None:
-        vals = np.sqrt(vals) * amp_factor[idx][..., None]
-    per_axis = vals.max(axis=3)  # (F, M, K, C)
+        amp = np.sqrt(amp) * amp_factor[None, :, None]
+    # the largest bin within +-search_bins: a running maximum along the bins, then one gather
+    best = amp.copy()
+    for o in range(1, search_bins + 1):
+        np.maximum(best[:, :-o], amp[:, o:], out=best[:, :-o])  # neighbour above
+        np.maximum(best[:, o:], amp[:, :-o], out=best[:, o:])  # neighbour below
+    idx = np.clip(k, 0, nbins - 1)
+    per_axis = best[np.arange(f)[:, None, None], idx, :]  # (F, M, K, C)
     rss = np.sqrt(np.sum(per_axis**2, axis=-1))
-    axis = np.argmax(per_axis, axis=-1)
     bad = (k < 1) | (k >= nbins)
-    return np.where(bad, np.nan, rss), np.where(bad, -1, axis)
+    if not with_axis:
+        return np.where(bad, np.nan, rss), None
+    return np.where(bad, np.nan, rss), np.where(bad, -1, np.argmax(per_axis, axis=-1))

@@ -127,6 +127,11 @@ class RollingSTFT:
         self.psd_scale = factor / (config.fs_hz * s2)
         self.amp_scale = factor / s1
         self.amp_factor = self.amp_scale / np.sqrt(self.psd_scale)
+        # removing a frame's mean after the FFT: X - mean * W, where W = rfft(window) is non-zero
+        # in a few low bins only (two for Hann, five for flat-top)
+        wf = np.fft.rfft(self.win)
+        self._detrend_bins = np.flatnonzero(np.abs(wf) > 1e-9 * np.abs(wf).max())
+        self._detrend_w = wf[self._detrend_bins]
         self.segment = -1
         self.reset()
 
@@ -151,8 +156,10 @@ class RollingSTFT:
         starts = np.arange(self._next, end - n_per + 1, hop)
         rel = starts - self._buf_start
         frames = sliding_window_view(self._buf, n_per, axis=1)[:, rel]  # (C, F, N) view, rows contiguous
-        frames = frames - frames.mean(axis=2, keepdims=True)
         spec = np.fft.rfft(frames * self.win, axis=2)  # (C, F, bins)
+        mean = frames.mean(axis=2)
+        spec[:, :, self._detrend_bins] -= mean[:, :, None] * self._detrend_w  # detrend='constant'
+
         mag2 = spec.real**2 + spec.imag**2
         psd = np.transpose(mag2, (1, 2, 0)) * self.psd_scale[None, :, None]  # (F, bins, C)
         self._next = int(starts[-1] + hop)
