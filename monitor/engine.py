@@ -12,6 +12,7 @@ import threading
 from dataclasses import dataclass, field
 
 import numpy as np
+from scipy.signal import lfilter
 
 import firmware_protocol as fp
 
@@ -209,14 +210,19 @@ class Engine:
         # averaged spectrum and peak hold
         alpha = 1.0 - np.exp(-(spec.hop / fs) / self.config.ema_tau_s)
         gap_first = self._gap_pending
-        for i in range(f):
-            p = fb.psd[i]
-            if self.ema is None or (gap_first and i == 0):
-                self.ema = p.copy()
-                self.peak = p.copy() if self.peak is None else np.maximum(self.peak, p)
-            else:
-                self.ema += alpha * (p - self.ema)
-                np.maximum(self.peak, p, out=self.peak)
+        psd = fb.psd
+        if self.ema is None or gap_first:  # the average restarts after a gap, the peak hold does not
+            self.ema = psd[0].copy()
+            psd_rest = psd[1:]
+        else:
+            psd_rest = psd
+        if psd_rest.shape[0] == 1:
+            self.ema += alpha * (psd_rest[0] - self.ema)
+        elif psd_rest.shape[0] > 1:  # e_k = (1 - a) e_(k-1) + a p_k over the frames, one call
+            out, _ = lfilter([alpha], [1.0, alpha - 1.0], psd_rest, axis=0, zi=((1 - alpha) * self.ema)[None])
+            self.ema = out[-1].copy()
+        top = psd.max(axis=0)
+        self.peak = top.copy() if self.peak is None else np.maximum(self.peak, top, out=self.peak)
         self.waterfall.append(fb.psd.astype(np.float32))
         marks = np.zeros((f, 2))
         marks[:, 0] = t1

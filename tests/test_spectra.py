@@ -129,3 +129,27 @@ def test_config_errors_are_pinned():
         SpectrumConfig(FS, overlap=0.99)
     with pytest.raises(ValueError, match="need 16"):
         SpectrumConfig(FS, window_s=0.001)
+
+
+def test_engine_average_and_peak_hold_match_their_definitions():
+    # e_k = e_(k-1) + a (p_k - e_(k-1)), a = 1 - exp(-hop / tau); peak = running maximum
+    import firmware_protocol as fp
+    from monitor.assembler import DeviceChange, Samples
+    from monitor.engine import Engine, EngineConfig
+
+    eng = Engine(EngineConfig(window_s=0.064, overlap=0.5, stray_peaks=False))
+    eng.feed([DeviceChange(fp.DeviceInfo(motor_count=0), False)])
+    rng = np.random.default_rng(5)
+    x = rng.normal(size=(8000, 3)).astype(np.float32)
+    eng.feed([Samples(0, 0, 0.0, 8000.0, x[:3000])])  # several frames in one batch
+    eng.feed([Samples(0, 3000, 3000 / 8000, 8000.0, x[3000:])])
+    cfg = SpectrumConfig(8000.0, 0.064, 0.5)
+    psd, _, _ = _frames(cfg, x.astype(np.float64), [])
+    a = 1.0 - np.exp(-(cfg.hop / 8000.0) / 1.0)
+    e = psd[0].copy()
+    for p in psd[1:]:
+        e += a * (p - e)
+    snap = eng.snapshot()
+    np.testing.assert_allclose(snap.ema, e, rtol=1e-9)
+    np.testing.assert_allclose(snap.peak, psd.max(axis=0), rtol=1e-12)
+    assert snap.frames == psd.shape[0]
