@@ -30,6 +30,7 @@ def _add_demo(sub) -> None:
     )
     p.add_argument("--seconds", type=float, help="stop after S seconds (default: the whole 75 s throttle script)")
     p.add_argument("--seed", type=int, default=1, help="simulator seed (default 1)")
+    p.add_argument("--headless", action="store_true", help="no screen: print events (the default without a terminal)")
     p.set_defaults(func=lambda a: __import__("monitor.demo", fromlist=["run"]).run(a))
 
 
@@ -85,11 +86,45 @@ def _watch(args) -> int:
     from .headless import run_watch
 
     if not args.headless:
-        import sys
-
-        print("spinrig watch: the live screen is not built yet; add --headless", file=sys.stderr)
-        return 2
+        return run_screen(args)
     return run_watch(args)
+
+
+def run_screen(args, replay: bool = False) -> int:
+    """The live screen over a port (or a capture, ``replay``); errors are one line, exit 2."""
+    import sys
+
+    from .headless import conditions, engine_config, load_profile_arg
+    from .live import LiveRun
+    from .profile import ProfileError
+
+    try:
+        profile = load_profile_arg(args.profile)
+    except ProfileError as exc:
+        print(f"spinrig: {exc}", file=sys.stderr)
+        return 2
+    source = args.file if replay else args.port
+    save_to = None if getattr(args, "note", None) == "demo" else args.profile  # the demo never rewrites its profile
+    run = LiveRun(source, profile, profile_path=save_to, baud=getattr(args, "baud", 921_600),
+                  config=engine_config(args), replay=replay, replay_speed=getattr(args, "speed", None) or 1.0,
+                  conditions=conditions(args))
+    if not replay:
+        try:
+            run.start()
+        except Exception as exc:  # noqa: BLE001 - a port that does not open: one line
+            print(f"spinrig: cannot open {source}: {exc}", file=sys.stderr)
+            return 2
+    from .views.app import SpinrigApp
+
+    app = SpinrigApp(run, capture_path=getattr(args, "capture", None), start=replay,
+                     duration=getattr(args, "duration", None))
+    try:
+        app.run()
+    except KeyboardInterrupt:
+        pass
+    finally:
+        run.stop()
+    return 0
 
 
 def _add_replay(sub) -> None:
@@ -105,7 +140,15 @@ def _add_replay(sub) -> None:
     p.add_argument("--headless", action="store_true", help="no screen: print events and a summary")
     p.add_argument("--speed", type=float, help="pace the replay: 1 is real time (default: as fast as possible)")
     _add_run_options(p)
-    p.set_defaults(func=lambda a: __import__("monitor.headless", fromlist=["run_replay"]).run_replay(a))
+    p.set_defaults(func=_replay)
+
+
+def _replay(args) -> int:
+    if args.headless:
+        from .headless import run_replay
+
+        return run_replay(args)
+    return run_screen(args, replay=True)
 
 
 def _add_export(sub) -> None:

@@ -9,6 +9,7 @@ summary of the bands to avoid. It ends by itself after the script.
 from __future__ import annotations
 
 import queue
+import sys
 import threading
 from pathlib import Path
 from types import SimpleNamespace
@@ -38,6 +39,11 @@ def run(args) -> int:
                                  duration=seconds, json=False, window_s=0.256, overlap=0.875,
                                  mounting=scenario.mounting, props="on", supply_v=None, note="demo")
     try:
+        if sys.stdout.isatty() and not getattr(args, "headless", False):
+            from .cli import run_screen
+
+            watch_args.port = path
+            return run_screen(watch_args)
         return run_watch(watch_args)
     finally:
         stop.set()

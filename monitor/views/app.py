@@ -1,0 +1,261 @@
+"""The live screen: spectra, waterfall, motors, modes, events and status, over a LiveRun.
+
+Layout and key map are spinrig's own. Keys: space freeze, p peak hold, [ ] window length,
+o overlap, left/right (shift: x10) cursor, m mark the cursor peak as a mode, c capture on/off,
+r/t/y toggle roll/pitch/yaw, k tap (simulated devices), ? help, q quit.
+"""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+from textual.app import App, ComposeResult
+from textual.binding import Binding
+from textual.containers import Horizontal, Vertical
+from textual.screen import ModalScreen
+from textual.widgets import RichLog, Static
+
+from ..crossing import CrossingEvent
+from ..live import LiveRun
+from ..orders import ORDER_NAMES
+from .widgets import AXES, SpectrumView, WaterfallView
+
+CAUTION = ("CAUTION  props off or frame clamped | eye protection | clear of the prop arc | "
+           "current-limited supply | kill switch in reach")
+STATE_MARK = {"clear": "  ok ", "nearing": ">> near", "crossing": "!! CROSS"}
+
+HELP = """spinrig live screen keys
+
+  space    freeze / resume the display (data keeps flowing)
+  p        peak hold on / off
+  [ ]      shorter / longer spectrum window
+  o        next overlap (50, 75, 87.5 %)
+  < >      move the frequency cursor (shift: ten columns)
+  m        mark the cursor peak as a mode and save it to the profile
+  c        start / stop a capture (live ports)
+  r t y    show / hide roll, pitch, yaw
+  k        tap the frame (simulated devices only)
+  ?        this help          q  quit (motors are stopped)
+
+press any key to close"""
+
+
+class HelpScreen(ModalScreen):
+    DEFAULT_CSS = """
+    HelpScreen { align: center middle; }
+    #help { width: 64; height: auto; border: round #5fb3ff; padding: 1 2; background: #0d1117; }
+    """
+
+    def compose(self) -> ComposeResult:
+        yield Static(HELP, id="help")
+
+    def on_key(self, event) -> None:
+        event.stop()
+        self.app.pop_screen()
+
+
+class SpinrigApp(App):
+    CSS = """
+    Screen { background: #0d1117; }
+    #caution { height: 1; background: #5a3a00; color: #ffd27a; }
+    #main { height: 1fr; }
+    #left { width: 2fr; }
+    #right { width: 1fr; min-width: 28; }
+    #spec_title, #wf_title { height: 1; color: #8b93a1; }
+    #spectrum { height: 1fr; min-height: 8; }
+    #waterfall { height: 1fr; min-height: 5; }
+    #motors { height: auto; max-height: 10; border-top: solid #30363d; }
+    #modes { height: auto; max-height: 12; border-top: solid #30363d; }
+    #events { height: 1fr; border-top: solid #30363d; }
+    #status { height: 1; background: #161b22; color: #c8cdd8; }
+    """
+    BINDINGS = [
+        Binding("q", "quit_run", "quit"),
+        Binding("ctrl+c", "quit_run", "quit", show=False, priority=True),
+        Binding("space", "freeze", "freeze"),
+        Binding("p", "peak", "peak hold"),
+        Binding("left_square_bracket", "window(-1)", "shorter window"),
+        Binding("right_square_bracket", "window(1)", "longer window"),
+        Binding("o", "overlap", "overlap"),
+        Binding("left", "cursor(-1)", "cursor", show=False),
+        Binding("right", "cursor(1)", "cursor", show=False),
+        Binding("shift+left", "cursor(-10)", show=False),
+        Binding("shift+right", "cursor(10)", show=False),
+        Binding("m", "mark", "mark mode"),
+        Binding("c", "capture", "capture"),
+        Binding("r", "axis(0)", show=False),
+        Binding("t", "axis(1)", show=False),
+        Binding("y", "axis(2)", show=False),
+        Binding("k", "tap", show=False),
+        Binding("question_mark", "help", "help"),
+    ]
+
+    def __init__(self, run: LiveRun, capture_path: str | None = None, fps: float = 20.0, start: bool = True,
+                 duration: float | None = None):
+        super().__init__(ansi_color=True)
+        self.live = run
+        self.capture_path = capture_path
+        self.fps = fps
+        self._start = start
+        self.duration = duration
+        self._wf_seen = 0
+        self._events_seen = 0
+        self._last_frames = -1
+        self.messages: list[str] = []
+
+    def compose(self) -> ComposeResult:
+        yield Static(CAUTION, id="caution")
+        with Horizontal(id="main"):
+            with Vertical(id="left"):
+                yield Static("spectrum", id="spec_title")
+                yield SpectrumView(id="spectrum")
+                yield Static("waterfall (newest at the top)", id="wf_title")
+                yield WaterfallView(id="waterfall")
+            with Vertical(id="right"):
+                yield Static("motors", id="motors")
+                yield Static("modes", id="modes")
+                yield RichLog(id="events", max_lines=400, wrap=False, markup=False)
+        yield Static("", id="status")
+
+    def on_mount(self) -> None:
+        if self._start:
+            try:
+                self.live.start()
+            except Exception as exc:  # noqa: BLE001 - the screen shows it and stays up
+                self.note(f"cannot start: {exc}")
+        self.set_interval(1.0 / self.fps, self.tick)
+        if self.duration:
+            self.set_timer(self.duration, self.action_quit_run)
+
+    # ---------------------------------------------------------------- drawing
+
+    def note(self, text: str) -> None:
+        self.messages.append(text)
+        self.query_one("#events", RichLog).write(f"{time.strftime('%H:%M:%S')} {text}")
+
+    def tick(self) -> None:
+        run = self.live
+        snap = run.snapshot()
+        spec = self.query_one(SpectrumView)
+        wf = self.query_one(WaterfallView)
+        if snap.frames != self._last_frames or run.frozen_snapshot is not None:
+            self._last_frames = snap.frames
+            spec.update_snapshot(snap, list(run.profile.modes))
+            if run.frozen_snapshot is None:
+                rows, marks = run.engine.waterfall_rows(self._wf_seen)
+                self._wf_seen = snap.waterfall_total
+                wf.add_rows(rows, marks, snap.freqs)
+        self._events()
+        self._panels(snap)
+
+    def _events(self) -> None:
+        log = self.query_one("#events", RichLog)
+        evs = list(self.live.events)
+        new = evs[self._events_seen - len(evs):] if self._events_seen > len(evs) else evs[self._events_seen:]
+        self._events_seen = len(evs) if len(evs) < self.live.events.maxlen else self._events_seen
+        for e in new[-50:]:
+            log.write(e.text() if not isinstance(e, CrossingEvent) else e.text().replace("  ", " "))
+        if len(evs) >= self.live.events.maxlen:
+            self.live.events.clear()
+            self._events_seen = 0
+
+    def _panels(self, snap) -> None:
+        spec = self.query_one(SpectrumView)
+        cfg = self.live.engine.config
+        est = " (estimated)" if snap.rpm_estimated else ""
+        self.query_one("#spec_title", Static).update(
+            f"spectrum {'peak hold' if spec.use_peak else 'live'} | window {cfg.window_s * 1000:.0f} ms, "
+            f"overlap {cfg.overlap * 100:.1f} % | {spec.readout}"
+        )
+        lines = [f"motors{est}"]
+        for m in range(snap.rpm.shape[0]):
+            rpm = snap.rpm[m]
+            f1 = snap.order_hz[m, 0] if snap.order_hz.size else np.nan
+            tel = "telem" if (snap.telemetry.size and snap.telemetry[m]) else ("est" if snap.rpm_estimated else "none")
+            thr = snap.throttle[m] * 100 if snap.throttle.size and np.isfinite(snap.throttle[m]) else float("nan")
+            lines.append(f" M{m + 1} {rpm:6.0f} rpm {thr:4.0f}% 1x {f1:5.1f} Hz {tel}")
+        self.query_one("#motors", Static).update("\n".join(lines))
+        mlines = ["modes"]
+        for st in snap.mode_states:
+            mlines.append(f" {STATE_MARK[st['state']]:8s} {st['freq_hz']:6.1f} Hz {st['mode'][:18]}")
+        if not snap.mode_states:
+            mlines.append(" no profile: stray peaks only")
+        for b in snap.bands[:4]:
+            mlines.append(f"  band {b['mode_hz']:.0f} Hz {b['order_name'][:10]} {b['rpm_low']:.0f}-{b['rpm_high']:.0f}")
+        self.query_one("#modes", Static).update("\n".join(mlines))
+        s = self.live.status()
+        cap = f" | capture {s.capture} {s.capture_bytes / 1e6:.1f} MB" if s.capture else ""
+        link = "" if s.connected else " | LINK DOWN"
+        frozen = " | FROZEN" if s.frozen else ""
+        self.query_one("#status", Static).update(
+            f"{s.source} | {s.rate_hz:.0f} Hz | {s.frames_per_s:4.1f} frames/s | CRC {s.crc_errors} | "
+            f"gaps {s.gaps} ({s.samples_lost} lost) | reconnects {s.reconnects}{cap}{link}{frozen} | ? help"
+        )
+
+    # ---------------------------------------------------------------- actions
+
+    def action_quit_run(self) -> None:
+        self.live.stop()
+        self.exit(0)
+
+    def action_freeze(self) -> None:
+        self.note("display frozen" if self.live.toggle_freeze() else "display resumed")
+
+    def action_peak(self) -> None:
+        spec = self.query_one(SpectrumView)
+        spec.use_peak = not spec.use_peak
+        if spec.use_peak:
+            self.live.toggle_peak_hold()
+        self.note(f"peak hold {'on' if spec.use_peak else 'off'}")
+
+    def action_window(self, step: int) -> None:
+        w = self.live.step_window(step)
+        self.query_one(WaterfallView).clear()
+        self._wf_seen = 0
+        self.note(f"window {w * 1000:.0f} ms")
+
+    def action_overlap(self) -> None:
+        o = self.live.cycle_overlap()
+        self.query_one(WaterfallView).clear()
+        self._wf_seen = 0
+        self.note(f"overlap {o * 100:.1f} %")
+
+    def action_cursor(self, step: int) -> None:
+        spec = self.query_one(SpectrumView)
+        spec.cursor_col = int(np.clip(spec.cursor_col + step, 0, spec.plot_width() - 1))
+        spec.update_snapshot(self.live.snapshot(), list(self.live.profile.modes))
+
+    def action_mark(self) -> None:
+        spec = self.query_one(SpectrumView)
+        f = spec.cursor_frequency()
+        if f is None:
+            self.note("nothing to mark yet")
+            return
+        snap = self.live.snapshot()
+        k = int(round(f / (snap.freqs[1] - snap.freqs[0])))
+        axis = int(np.argmax(snap.psd[k])) if snap.psd is not None else 0
+        self.note(self.live.mark_mode(f, axis))
+
+    def action_capture(self) -> None:
+        if self.live.link is not None and self.live.link.capture is not None:
+            self.note(self.live.stop_capture() or "no capture")
+            return
+        path = self.capture_path or time.strftime("spinrig-%Y%m%d-%H%M%S.spcap")
+        self.note(self.live.start_capture(path))
+
+    def action_axis(self, i: int) -> None:
+        spec = self.query_one(SpectrumView)
+        wf = self.query_one(WaterfallView)
+        spec.axes_shown[i] = not spec.axes_shown[i]
+        wf.axes_shown = list(spec.axes_shown)
+        self.note(f"{AXES[i]} {'shown' if spec.axes_shown[i] else 'hidden'}")
+
+    def action_tap(self) -> None:
+        self.note(self.live.tap(0))
+
+    def action_help(self) -> None:
+        self.push_screen(HelpScreen())
+
+
+__all__ = ["SpinrigApp", "ORDER_NAMES"]

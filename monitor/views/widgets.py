@@ -1,0 +1,249 @@
+"""Widgets of the live screen. Each renders data it is handed (from an engine snapshot); none
+computes a spectrum. Large, fast-changing areas are drawn line by line (``render_line`` ->
+``Strip``) with precomputed styles and cached rows."""
+
+from __future__ import annotations
+
+from collections import deque
+
+import numpy as np
+from rich.segment import Segment
+from rich.style import Style
+from textual.strip import Strip
+from textual.widget import Widget
+
+from .scale import AXIS_COLOURS, HEAT, MOTOR_COLOURS, column_bins, column_levels_db, column_of, level_index
+
+AXES = ("roll", "pitch", "yaw")
+EIGHTHS = " ▁▂▃▄▅▆▇█"
+ORDER_MARKS = ("1", "2", "b", "B")  # 1x, 2x, blade-pass, 2x blade-pass
+BASE = Style(color="#c8cdd8", bgcolor="#0d1117")
+DIM = Style(color="#5c6370", bgcolor="#0d1117")
+BAND = Style(bgcolor="#1c2a1c")
+CURSOR_BG = "#3a3f4b"
+HEAT_STYLES = [Style(color=c, bgcolor="#0d1117") for c in HEAT]
+HALF_STYLES = [[Style(color=HEAT[a], bgcolor=HEAT[b]) for b in range(len(HEAT))] for a in range(len(HEAT))]
+GAP_STYLE = Style(color="#ff5555", bgcolor="#0d1117")
+BG_KINDS = ("#0d1117", "#1c2a1c", CURSOR_BG)  # plain, inside a mode's half-power band, cursor
+BAR_STYLES = [[Style(color=c, bgcolor=bg) for bg in BG_KINDS] for c in AXIS_COLOURS]
+
+
+def _text_strip(text: str, width: int, style: Style = BASE) -> Strip:
+    return Strip([Segment(text[:width].ljust(width), style)], width)
+
+
+class SpectrumView(Widget):
+    """Log-magnitude spectrum per visible axis, mode bands shaded, motor orders marked, a cursor."""
+
+    DEFAULT_CSS = "SpectrumView { height: 1fr; }"
+    LABEL_W = 6
+
+    def __init__(self, **kw):
+        super().__init__(**kw)
+        self.axes_shown = [True, True, True]
+        self.use_peak = False
+        self.fmax_hz = 1000.0
+        self.cursor_col = 20
+        self.span_db = 60.0
+        self._lines: list[Strip] = []
+        self.snapshot = None
+        self.profile_modes: list = []
+        self.readout = ""
+
+    def plot_width(self) -> int:
+        return max(10, self.size.width - self.LABEL_W)
+
+    def update_snapshot(self, snap, modes) -> None:
+        self.snapshot = snap
+        self.profile_modes = modes
+        self._build()
+        self.refresh()
+
+    def cursor_frequency(self) -> float | None:
+        s = self.snapshot
+        if s is None or s.psd is None:
+            return None
+        edges = column_bins(s.freqs, self.plot_width(), self.fmax_hz)
+        c = min(self.cursor_col, len(edges) - 2)
+        lo, hi = edges[c], max(edges[c + 1], edges[c] + 1)
+        src = s.peak if self.use_peak and s.peak is not None else s.psd
+        tot = src[lo:hi, [i for i in range(3) if self.axes_shown[i]] or [0]].sum(axis=1)
+        k = lo + int(np.argmax(tot))
+        return float(s.freqs[k])
+
+    def _build(self) -> None:
+        w, h = self.size.width, self.size.height
+        s = self.snapshot
+        if w <= 0 or h <= 0:
+            return
+        if s is None or s.psd is None:
+            self._lines = [_text_strip(" waiting for spectra...", w, DIM)] + [_text_strip("", w)] * (h - 1)
+            return
+        pw = self.plot_width()
+        edges = column_bins(s.freqs, pw, self.fmax_hz)
+        src = s.peak if self.use_peak and s.peak is not None else s.psd
+        shown = [i for i in range(3) if self.axes_shown[i]] or [0]
+        levels = np.stack([column_levels_db(src[:, i], edges) for i in shown])  # (A, columns)
+        top = float(np.ceil(levels.max() / 10.0) * 10.0)
+        bottom = top - self.span_db
+        band_cols = np.zeros(pw, bool)
+        for m in self.profile_modes:
+            lo_c = column_of(m.band_hz[0], s.freqs, edges)
+            hi_c = column_of(m.band_hz[1], s.freqs, edges)
+            if lo_c is not None and hi_c is not None:
+                band_cols[lo_c : hi_c + 1] = True
+        marks = [" "] * pw
+        mark_style = [DIM] * pw
+        for mi in range(s.order_hz.shape[0]):
+            for k in range(s.order_hz.shape[1]):
+                f = s.order_hz[mi, k]
+                c = column_of(float(f), s.freqs, edges) if np.isfinite(f) else None
+                if c is not None:
+                    marks[c] = ORDER_MARKS[k]
+                    mark_style[c] = Style(color=MOTOR_COLOURS[mi % len(MOTOR_COLOURS)], bgcolor="#0d1117", bold=True)
+        cur = min(self.cursor_col, pw - 1)
+        lines = []
+        # row 0: order markers
+        segs = [Segment(" " * self.LABEL_W, DIM)]
+        segs += [Segment(marks[c], mark_style[c]) for c in range(pw)]
+        lines.append(Strip(segs, w))
+        plot_rows = max(1, h - 2)
+        per_axis = max(1, plot_rows // len(shown))
+        for a, ax in enumerate(shown):
+            frac = np.clip((levels[a] - bottom) / self.span_db, 0, 1) * per_axis  # bar height in rows
+            styles = BAR_STYLES[ax]
+            bgk = np.where(band_cols, 1, 0)
+            bgk[cur] = 2
+            for r in range(per_axis):
+                row_from_bottom = per_axis - 1 - r
+                fill = np.clip(frac - row_from_bottom, 0, 1)
+                idx = np.round(fill * 8).astype(int)
+                label = ""
+                if r == 0:
+                    label = f"{AXES[ax][:4]:>5} "
+                elif r == per_axis - 1:
+                    label = f"{bottom + self.span_db * (per_axis - 1 - r) / per_axis:5.0f} "
+                elif r == 1:
+                    label = f"{top + 0.0:5.0f} "
+                segs = [Segment(label.ljust(self.LABEL_W)[: self.LABEL_W], DIM)]
+                run_chars, run_style = [], None
+                for c in range(pw):
+                    st = styles[bgk[c]]
+                    ch = EIGHTHS[idx[c]]
+                    if st is run_style:
+                        run_chars.append(ch)
+                    else:
+                        if run_chars:
+                            segs.append(Segment("".join(run_chars), run_style))
+                        run_chars, run_style = [ch], st
+                if run_chars:
+                    segs.append(Segment("".join(run_chars), run_style))
+                lines.append(Strip(segs, w))
+        # frequency ticks
+        ticks = [" "] * pw
+        step = max(50, int(round(self.fmax_hz / max(1, pw // 8) / 50.0)) * 50)
+        for f in range(0, int(self.fmax_hz) + 1, step):
+            c = column_of(float(f), s.freqs, edges) if f > 0 else 0
+            if c is not None:
+                for j, ch in enumerate(f"{f}"):
+                    if c + j < pw:
+                        ticks[c + j] = ch
+        lines.append(Strip([Segment(" Hz".ljust(self.LABEL_W), DIM), Segment("".join(ticks), DIM)], w))
+        while len(lines) < h:
+            lines.append(_text_strip("", w))
+        self._lines = lines[:h]
+        fcur = self.cursor_frequency()
+        if fcur is not None:
+            k = int(round(fcur / (s.freqs[1] - s.freqs[0])))
+            lv = 10 * np.log10(max(float(src[k, shown].sum()), 1e-30))
+            self.readout = f"cursor {fcur:7.1f} Hz  {lv:+6.1f} dB"
+
+    def on_resize(self, event) -> None:
+        self._build()
+
+    def render_line(self, y: int) -> Strip:
+        if y < len(self._lines):
+            return self._lines[y]
+        return _text_strip("", self.size.width)
+
+
+class WaterfallView(Widget):
+    """Time x frequency heat map of the visible axes' PSD, two time rows per text row (half
+    blocks), gaps marked, with a dB colour legend on its last line."""
+
+    DEFAULT_CSS = "WaterfallView { height: 1fr; }"
+    LABEL_W = 6
+
+    def __init__(self, **kw):
+        super().__init__(**kw)
+        self.rows: deque = deque(maxlen=200)  # (level index per column, gap flag)
+        self.axes_shown = [True, True, True]
+        self.fmax_hz = 1000.0
+        self.top_db = -10.0
+        self.span_db = 60.0
+        self._strip_cache: dict[int, Strip] = {}
+        self._width = 0
+
+    def add_rows(self, rows: np.ndarray, marks: np.ndarray, freqs: np.ndarray) -> None:
+        if rows.shape[0] == 0 or freqs.size == 0:
+            return
+        pw = max(10, self.size.width - self.LABEL_W)
+        if pw != self._width:
+            self._width = pw
+            self.rows.clear()
+        edges = column_bins(freqs, pw, self.fmax_hz)
+        shown = [i for i in range(3) if self.axes_shown[i]] or [0]
+        tot = rows[:, :, shown].sum(axis=2)
+        db = 10 * np.log10(np.maximum(tot, 1e-30))
+        cols = np.maximum.reduceat(db, np.minimum(edges[:-1], db.shape[1] - 1), axis=1)
+        self.top_db = max(self.top_db - 0.5, float(np.ceil(cols.max() / 10) * 10))
+        for i in range(cols.shape[0]):
+            self.rows.append((level_index(cols[i], self.top_db, self.span_db), bool(marks[i, 1])))
+        self._strip_cache.clear()
+        self.refresh()
+
+    def clear(self) -> None:
+        self.rows.clear()
+        self._strip_cache.clear()
+        self.refresh()
+
+    def render_line(self, y: int) -> Strip:
+        w, h = self.size.width, self.size.height
+        if y == h - 1:
+            return self._legend(w)
+        cached = self._strip_cache.get(y)
+        if cached is not None:
+            return cached
+        pw = max(10, w - self.LABEL_W)
+        n = len(self.rows)
+        # newest rows at the top: text row y shows time rows 2y (upper half) and 2y + 1 (lower half)
+        i_top, i_bot = n - 1 - 2 * y, n - 2 - 2 * y
+        label = "  now " if y == 0 else ("      " if y % 4 else f"{-2 * y:5d} ")
+        segs = [Segment(label[: self.LABEL_W], DIM)]
+        if i_top < 0:
+            strip = Strip(segs + [Segment(" " * pw, BASE)], w)
+        else:
+            top, gap_t = self.rows[i_top]
+            bot, gap_b = self.rows[i_bot] if i_bot >= 0 else (np.zeros_like(top), False)
+            run, st = [], None
+            for c in range(min(pw, len(top))):
+                s = GAP_STYLE if (gap_t or gap_b) and c % 4 == 0 else HALF_STYLES[top[c]][bot[c]]
+                ch = "─" if s is GAP_STYLE else "▀"
+                if s is st:
+                    run.append(ch)
+                else:
+                    if run:
+                        segs.append(Segment("".join(run), st))
+                    run, st = [ch], s
+            if run:
+                segs.append(Segment("".join(run), st))
+            strip = Strip(segs, w)
+        self._strip_cache[y] = strip
+        return strip
+
+    def _legend(self, w: int) -> Strip:
+        segs = [Segment(f"{self.top_db - self.span_db:5.0f} ", DIM)]
+        for st in HEAT_STYLES:
+            segs.append(Segment("█", st))
+        segs.append(Segment(f" {self.top_db:.0f} dB re (deg/s)^2/Hz   -- gap", DIM))
+        return Strip(segs, w).crop(0, w)
