@@ -1,7 +1,7 @@
 """Run spinrig's benchmarks: ``python3 benchmarks/run.py [NAME ...] [--quick]``.
 
 Each benchmark measures spinrig beside a baseline in the same run and prints ratios and medians.
-Names: decode, sim, engine. Not part of the test suite: no test ever
+Names: decode, sim, engine, screen. Not part of the test suite: no test ever
 asserts a wall-clock time.
 """
 
@@ -18,6 +18,7 @@ BENCHES = {
     "decode": "benchmarks.bench_decode",
     "sim": "benchmarks.bench_sim",
     "engine": "benchmarks.bench_engine",
+    "screen": "benchmarks.bench_screen",
 }
 
 

@@ -103,6 +103,8 @@ class SpinrigApp(App):
         self._events_seen = 0
         self._last_frames = -1
         self.messages: list[str] = []
+        self._texts: dict[str, str] = {}
+        self._last_wf = 0.0
 
     def compose(self) -> ComposeResult:
         yield Static(CAUTION, id="caution")
@@ -142,7 +144,9 @@ class SpinrigApp(App):
         if snap.frames != self._last_frames or run.frozen_snapshot is not None:
             self._last_frames = snap.frames
             spec.update_snapshot(snap, list(run.profile.modes))
-            if run.frozen_snapshot is None:
+            now = time.monotonic()
+            if run.frozen_snapshot is None and now - self._last_wf >= 0.1:
+                self._last_wf = now
                 rows, marks = run.engine.waterfall_rows(self._wf_seen)
                 self._wf_seen = snap.waterfall_total
                 wf.add_rows(rows, marks, snap.freqs)
@@ -160,11 +164,17 @@ class SpinrigApp(App):
             self.live.events.clear()
             self._events_seen = 0
 
+    def _set(self, wid: str, text: str) -> None:
+        if self._texts.get(wid) != text:
+            self._texts[wid] = text
+            self.query_one(wid, Static).update(text)
+
     def _panels(self, snap) -> None:
         spec = self.query_one(SpectrumView)
         cfg = self.live.engine.config
         est = " (estimated)" if snap.rpm_estimated else ""
-        self.query_one("#spec_title", Static).update(
+        self._set(
+            "#spec_title",
             f"spectrum {'peak hold' if spec.use_peak else 'live'} | window {cfg.window_s * 1000:.0f} ms, "
             f"overlap {cfg.overlap * 100:.1f} % | {spec.readout}"
         )
@@ -175,7 +185,7 @@ class SpinrigApp(App):
             tel = "telem" if (snap.telemetry.size and snap.telemetry[m]) else ("est" if snap.rpm_estimated else "none")
             thr = snap.throttle[m] * 100 if snap.throttle.size and np.isfinite(snap.throttle[m]) else float("nan")
             lines.append(f" M{m + 1} {rpm:6.0f} rpm {thr:4.0f}% 1x {f1:5.1f} Hz {tel}")
-        self.query_one("#motors", Static).update("\n".join(lines))
+        self._set("#motors", "\n".join(lines))
         mlines = ["modes"]
         for st in snap.mode_states:
             mlines.append(f" {STATE_MARK[st['state']]:8s} {st['freq_hz']:6.1f} Hz {st['mode'][:18]}")
@@ -183,12 +193,13 @@ class SpinrigApp(App):
             mlines.append(" no profile: stray peaks only")
         for b in snap.bands[:4]:
             mlines.append(f"  band {b['mode_hz']:.0f} Hz {b['order_name'][:10]} {b['rpm_low']:.0f}-{b['rpm_high']:.0f}")
-        self.query_one("#modes", Static).update("\n".join(mlines))
+        self._set("#modes", "\n".join(mlines))
         s = self.live.status()
         cap = f" | capture {s.capture} {s.capture_bytes / 1e6:.1f} MB" if s.capture else ""
         link = "" if s.connected else " | LINK DOWN"
         frozen = " | FROZEN" if s.frozen else ""
-        self.query_one("#status", Static).update(
+        self._set(
+            "#status",
             f"{s.source} | {s.rate_hz:.0f} Hz | {s.frames_per_s:4.1f} frames/s | CRC {s.crc_errors} | "
             f"gaps {s.gaps} ({s.samples_lost} lost) | reconnects {s.reconnects}{cap}{link}{frozen} | ? help"
         )

@@ -28,6 +28,19 @@ BG_KINDS = ("#0d1117", "#1c2a1c", CURSOR_BG)  # plain, inside a mode's half-powe
 BAR_STYLES = [[Style(color=c, bgcolor=bg) for bg in BG_KINDS] for c in AXIS_COLOURS]
 
 
+_EIGHTHS_ARR = np.array(list(EIGHTHS))
+
+
+def _runs(kinds: np.ndarray) -> list[tuple[int, int, int]]:
+    """(start, end, value) of the runs of equal values in ``kinds``."""
+    if kinds.size == 0:
+        return []
+    cut = np.flatnonzero(np.diff(kinds)) + 1
+    starts = np.concatenate([[0], cut])
+    ends = np.concatenate([cut, [kinds.size]])
+    return [(int(a), int(b), int(kinds[a])) for a, b in zip(starts, ends, strict=True)]
+
+
 def _text_strip(text: str, width: int, style: Style = BASE) -> Strip:
     return Strip([Segment(text[:width].ljust(width), style)], width)
 
@@ -114,10 +127,11 @@ class SpectrumView(Widget):
             styles = BAR_STYLES[ax]
             bgk = np.where(band_cols, 1, 0)
             bgk[cur] = 2
+            runs = _runs(bgk)
             for r in range(per_axis):
                 row_from_bottom = per_axis - 1 - r
                 fill = np.clip(frac - row_from_bottom, 0, 1)
-                idx = np.round(fill * 8).astype(int)
+                chars = "".join(_EIGHTHS_ARR[np.round(fill * 8).astype(int)])
                 label = ""
                 if r == 0:
                     label = f"{AXES[ax][:4]:>5} "
@@ -126,18 +140,7 @@ class SpectrumView(Widget):
                 elif r == 1:
                     label = f"{top + 0.0:5.0f} "
                 segs = [Segment(label.ljust(self.LABEL_W)[: self.LABEL_W], DIM)]
-                run_chars, run_style = [], None
-                for c in range(pw):
-                    st = styles[bgk[c]]
-                    ch = EIGHTHS[idx[c]]
-                    if st is run_style:
-                        run_chars.append(ch)
-                    else:
-                        if run_chars:
-                            segs.append(Segment("".join(run_chars), run_style))
-                        run_chars, run_style = [ch], st
-                if run_chars:
-                    segs.append(Segment("".join(run_chars), run_style))
+                segs += [Segment(chars[a:b], styles[k]) for a, b, k in runs]
                 lines.append(Strip(segs, w))
         # frequency ticks
         ticks = [" "] * pw
@@ -169,7 +172,8 @@ class SpectrumView(Widget):
 
 class WaterfallView(Widget):
     """Time x frequency heat map of the visible axes' PSD, two time rows per text row (half
-    blocks), gaps marked, with a dB colour legend on its last line."""
+    blocks), newest at the top, gaps marked, with a dB colour legend on its last line. Text row
+    pairs are anchored to absolute row numbers, so a new spectrum changes one cached Strip."""
 
     DEFAULT_CSS = "WaterfallView { height: 1fr; }"
     LABEL_W = 6
@@ -177,11 +181,12 @@ class WaterfallView(Widget):
     def __init__(self, **kw):
         super().__init__(**kw)
         self.rows: deque = deque(maxlen=200)  # (level index per column, gap flag)
+        self.total = 0  # rows ever added (absolute index of the next row)
         self.axes_shown = [True, True, True]
         self.fmax_hz = 1000.0
         self.top_db = -10.0
         self.span_db = 60.0
-        self._strip_cache: dict[int, Strip] = {}
+        self._pairs: dict[int, Strip] = {}
         self._width = 0
 
     def add_rows(self, rows: np.ndarray, marks: np.ndarray, freqs: np.ndarray) -> None:
@@ -191,55 +196,70 @@ class WaterfallView(Widget):
         if pw != self._width:
             self._width = pw
             self.rows.clear()
+            self._pairs.clear()
+            self.total = 0
         edges = column_bins(freqs, pw, self.fmax_hz)
         shown = [i for i in range(3) if self.axes_shown[i]] or [0]
         tot = rows[:, :, shown].sum(axis=2)
         db = 10 * np.log10(np.maximum(tot, 1e-30))
         cols = np.maximum.reduceat(db, np.minimum(edges[:-1], db.shape[1] - 1), axis=1)
-        self.top_db = max(self.top_db - 0.5, float(np.ceil(cols.max() / 10) * 10))
+        top = float(np.ceil(cols.max() / 10) * 10)
+        if top > self.top_db or top < self.top_db - 20:  # rescale only on a real change
+            self.top_db = top
+            self._pairs.clear()
         for i in range(cols.shape[0]):
             self.rows.append((level_index(cols[i], self.top_db, self.span_db), bool(marks[i, 1])))
-        self._strip_cache.clear()
+            self._pairs.pop(self.total // 2, None)
+            self.total += 1
+        for k in [k for k in self._pairs if k < (self.total - len(self.rows)) // 2]:
+            del self._pairs[k]
         self.refresh()
 
     def clear(self) -> None:
         self.rows.clear()
-        self._strip_cache.clear()
+        self._pairs.clear()
+        self.total = 0
         self.refresh()
+
+    def _pair_strip(self, pair: int, w: int) -> Strip:
+        pw = max(10, w - self.LABEL_W)
+        first = self.total - len(self.rows)
+        i_new, i_old = 2 * pair + 1 - first, 2 * pair - first  # upper half newer, lower half older
+        if i_old < 0 and i_new < 0:
+            return Strip([Segment(" " * w, BASE)], w)
+        empty = (np.zeros(pw, int), False)
+        top, gap_t = self.rows[i_new] if 0 <= i_new < len(self.rows) else empty
+        bot, gap_b = self.rows[i_old] if 0 <= i_old < len(self.rows) else empty
+        segs = []
+        run, st = [], None
+        gap = gap_t or gap_b
+        for c in range(min(pw, len(top))):
+            s = GAP_STYLE if gap and c % 4 == 0 else HALF_STYLES[top[c]][bot[c]]
+            ch = "─" if s is GAP_STYLE else "▀"
+            if s is st:
+                run.append(ch)
+            else:
+                if run:
+                    segs.append(Segment("".join(run), st))
+                run, st = [ch], s
+        if run:
+            segs.append(Segment("".join(run), st))
+        return Strip(segs, pw)
 
     def render_line(self, y: int) -> Strip:
         w, h = self.size.width, self.size.height
         if y == h - 1:
             return self._legend(w)
-        cached = self._strip_cache.get(y)
-        if cached is not None:
-            return cached
-        pw = max(10, w - self.LABEL_W)
-        n = len(self.rows)
-        # newest rows at the top: text row y shows time rows 2y (upper half) and 2y + 1 (lower half)
-        i_top, i_bot = n - 1 - 2 * y, n - 2 - 2 * y
+        newest_pair = (self.total - 1) // 2
+        pair = newest_pair - y
         label = "  now " if y == 0 else ("      " if y % 4 else f"{-2 * y:5d} ")
-        segs = [Segment(label[: self.LABEL_W], DIM)]
-        if i_top < 0:
-            strip = Strip(segs + [Segment(" " * pw, BASE)], w)
-        else:
-            top, gap_t = self.rows[i_top]
-            bot, gap_b = self.rows[i_bot] if i_bot >= 0 else (np.zeros_like(top), False)
-            run, st = [], None
-            for c in range(min(pw, len(top))):
-                s = GAP_STYLE if (gap_t or gap_b) and c % 4 == 0 else HALF_STYLES[top[c]][bot[c]]
-                ch = "─" if s is GAP_STYLE else "▀"
-                if s is st:
-                    run.append(ch)
-                else:
-                    if run:
-                        segs.append(Segment("".join(run), st))
-                    run, st = [ch], s
-            if run:
-                segs.append(Segment("".join(run), st))
-            strip = Strip(segs, w)
-        self._strip_cache[y] = strip
-        return strip
+        if pair < 0 or self.total == 0:
+            return Strip([Segment(label[: self.LABEL_W], DIM), Segment(" " * max(0, w - self.LABEL_W), BASE)], w)
+        body = self._pairs.get(pair)
+        if body is None:
+            body = self._pair_strip(pair, w)
+            self._pairs[pair] = body
+        return Strip.join([Strip([Segment(label[: self.LABEL_W], DIM)], self.LABEL_W), body])
 
     def _legend(self, w: int) -> Strip:
         segs = [Segment(f"{self.top_db - self.span_db:5.0f} ", DIM)]
