@@ -23,6 +23,9 @@ from .widgets import AXES, SpectrumView, WaterfallView
 
 CAUTION = ("CAUTION  props off or frame clamped | eye protection | clear of the prop arc | "
            "current-limited supply | kill switch in reach")
+#: the waterfall repaints at 4 Hz (the spectra at the screen rate): a 160x48 heat map costs the
+#: terminal far more escape codes than the spectra do
+WATERFALL_PERIOD_S = 0.25
 STATE_MARK = {"clear": "  ok ", "nearing": ">> near", "crossing": "!! CROSS"}
 
 HELP = """spinrig live screen keys
@@ -145,7 +148,7 @@ class SpinrigApp(App):
             self._last_frames = snap.frames
             spec.update_snapshot(snap, list(run.profile.modes))
             now = time.monotonic()
-            if run.frozen_snapshot is None and now - self._last_wf >= 0.1:
+            if run.frozen_snapshot is None and now - self._last_wf >= WATERFALL_PERIOD_S:
                 self._last_wf = now
                 rows, marks = run.engine.waterfall_rows(self._wf_seen)
                 self._wf_seen = snap.waterfall_total

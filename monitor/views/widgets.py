@@ -24,6 +24,7 @@ CURSOR_BG = "#3a3f4b"
 HEAT_STYLES = [Style(color=c, bgcolor="#0d1117") for c in HEAT]
 HALF_STYLES = [[Style(color=HEAT[a], bgcolor=HEAT[b]) for b in range(len(HEAT))] for a in range(len(HEAT))]
 GAP_STYLE = Style(color="#ff5555", bgcolor="#0d1117")
+MARK_STYLES = [DIM] + [Style(color=c, bgcolor="#0d1117", bold=True) for c in MOTOR_COLOURS]
 BG_KINDS = ("#0d1117", "#1c2a1c", CURSOR_BG)  # plain, inside a mode's half-power band, cursor
 BAR_STYLES = [[Style(color=c, bgcolor=bg) for bg in BG_KINDS] for c in AXIS_COLOURS]
 
@@ -106,19 +107,22 @@ class SpectrumView(Widget):
             if lo_c is not None and hi_c is not None:
                 band_cols[lo_c : hi_c + 1] = True
         marks = [" "] * pw
-        mark_style = [DIM] * pw
-        for mi in range(s.order_hz.shape[0]):
-            for k in range(s.order_hz.shape[1]):
-                f = s.order_hz[mi, k]
-                c = column_of(float(f), s.freqs, edges) if np.isfinite(f) else None
-                if c is not None:
-                    marks[c] = ORDER_MARKS[k]
-                    mark_style[c] = Style(color=MOTOR_COLOURS[mi % len(MOTOR_COLOURS)], bgcolor="#0d1117", bold=True)
+        mark_kind = np.zeros(pw, int)  # 0 none, 1 + motor index
+        bin_hz = s.freqs[1] - s.freqs[0]
+        if s.order_hz.size:
+            k_bins = np.rint(np.nan_to_num(s.order_hz, nan=-1.0) / bin_hz).astype(int)  # (motors, orders)
+            cols = np.searchsorted(edges, k_bins, side="right") - 1
+            ok = (k_bins >= edges[0]) & (k_bins < edges[-1])
+            for mi, k in zip(*np.nonzero(ok), strict=True):
+                c = int(cols[mi, k])
+                marks[c] = ORDER_MARKS[k]
+                mark_kind[c] = 1 + mi % len(MOTOR_COLOURS)
         cur = min(self.cursor_col, pw - 1)
         lines = []
         # row 0: order markers
+        mark_text = "".join(marks)
         segs = [Segment(" " * self.LABEL_W, DIM)]
-        segs += [Segment(marks[c], mark_style[c]) for c in range(pw)]
+        segs += [Segment(mark_text[a:b], MARK_STYLES[k]) for a, b, k in _runs(mark_kind)]
         lines.append(Strip(segs, w))
         plot_rows = max(1, h - 2)
         per_axis = max(1, plot_rows // len(shown))
