@@ -175,3 +175,26 @@ def test_a_slow_screen_loses_no_samples():
         assert run.session.assembler.stats.samples > 4000
 
     asyncio.run(go())
+
+
+class FixedRun(FedRun):
+    """Fixed data and a fixed status line, for pictures that do not change between runs."""
+
+    def status(self):
+        st = super().status()
+        st.frames_per_s = 15.6
+        return st
+
+
+def _fixed_app():
+    run = FixedRun()
+    run.feed(3.0, lambda t: 6000.0 + 1500.0 * t)  # ends with the 1x order on the 150 Hz mode
+    return SpinrigApp(run, start=False, clock=lambda: "12:00:00")
+
+
+@pytest.mark.parametrize("size", [(80, 24), (160, 48)])
+def test_main_screen_snapshot(snap_compare, size):
+    async def settle(pilot):
+        await pilot.pause(0.3)
+
+    assert snap_compare(_fixed_app(), terminal_size=size, run_before=settle)

@@ -18,7 +18,7 @@ from textual.widgets import RichLog, Static
 
 from ..crossing import CrossingEvent
 from ..live import LiveRun
-from ..orders import ORDER_NAMES
+from ..orders import ORDER_NAMES, order_multipliers
 from .widgets import AXES, SpectrumView, WaterfallView
 
 CAUTION = ("CAUTION  props off or frame clamped | eye protection | clear of the prop arc | "
@@ -26,6 +26,7 @@ CAUTION = ("CAUTION  props off or frame clamped | eye protection | clear of the 
 #: the waterfall repaints at 4 Hz (the spectra at the screen rate): a 160x48 heat map costs the
 #: terminal far more escape codes than the spectra do
 WATERFALL_PERIOD_S = 0.25
+ORDER_SHORT = ("1x", "2x", "bp", "2bp")
 STATE_MARK = {"clear": "  ok ", "nearing": ">> near", "crossing": "!! CROSS"}
 
 HELP = """spinrig live screen keys
@@ -69,7 +70,7 @@ class SpinrigApp(App):
     #spectrum { height: 1fr; min-height: 8; }
     #waterfall { height: 1fr; min-height: 5; }
     #motors { height: auto; max-height: 10; border-top: solid #30363d; }
-    #modes { height: auto; max-height: 12; border-top: solid #30363d; }
+    #modes { height: auto; max-height: 16; border-top: solid #30363d; }
     #events { height: 1fr; border-top: solid #30363d; }
     #status { height: 1; background: #161b22; color: #c8cdd8; }
     """
@@ -95,13 +96,14 @@ class SpinrigApp(App):
     ]
 
     def __init__(self, run: LiveRun, capture_path: str | None = None, fps: float = 20.0, start: bool = True,
-                 duration: float | None = None):
+                 duration: float | None = None, clock=None):
         super().__init__(ansi_color=True)
         self.live = run
         self.capture_path = capture_path
         self.fps = fps
         self._start = start
         self.duration = duration
+        self.clock = clock or (lambda: time.strftime("%H:%M:%S"))  # tests fix it for snapshots
         self._wf_seen = 0
         self._events_seen = 0
         self._last_frames = -1
@@ -137,7 +139,7 @@ class SpinrigApp(App):
 
     def note(self, text: str) -> None:
         self.messages.append(text)
-        self.query_one("#events", RichLog).write(f"{time.strftime('%H:%M:%S')} {text}")
+        self.query_one("#events", RichLog).write(f"{self.clock()} {text}")
 
     def tick(self) -> None:
         run = self.live
@@ -190,8 +192,17 @@ class SpinrigApp(App):
             lines.append(f" M{m + 1} {rpm:6.0f} rpm {thr:4.0f}% 1x {f1:5.1f} Hz {tel}")
         self._set("#motors", "\n".join(lines))
         mlines = ["modes"]
+        modes = {m.name: m for m in self.live.profile.modes}
+        mult = order_multipliers(self.live.profile.blades)
         for st in snap.mode_states:
             mlines.append(f" {STATE_MARK[st['state']]:8s} {st['freq_hz']:6.1f} Hz {st['mode'][:18]}")
+            mode = modes.get(st["mode"])
+            if mode is not None and snap.order_hz.size and np.any(np.isfinite(snap.order_hz)):
+                d = np.abs(np.nan_to_num(snap.order_hz, nan=1e9) - mode.freq_hz)
+                mi, k = np.unravel_index(int(np.argmin(d)), d.shape)
+                lo, hi = mode.rpm_band(float(mult[k]))
+                mlines.append(f"     nearest M{mi + 1} {ORDER_SHORT[k]} {snap.order_hz[mi, k]:5.0f} Hz,"
+                              f" band {lo:.0f}-{hi:.0f} rpm")
         if not snap.mode_states:
             mlines.append(" no profile: stray peaks only")
         for b in snap.bands[:4]:
