@@ -26,6 +26,9 @@ CAUTION = ("CAUTION  props off or frame clamped | eye protection | clear of the 
 #: the waterfall repaints at 4 Hz (the spectra at the screen rate): a 160x48 heat map costs the
 #: terminal far more escape codes than the spectra do
 WATERFALL_PERIOD_S = 0.25
+#: text panels (motors, modes, status) are rewritten at most 5 times a second: they are read by a
+#: person, and every rewrite re-lays the side column out
+PANEL_PERIOD_S = 0.2
 ORDER_SHORT = ("1x", "2x", "bp", "2bp")
 STATE_MARK = {"clear": "  ok ", "nearing": ">> near", "crossing": "!! CROSS"}
 
@@ -110,6 +113,7 @@ class SpinrigApp(App):
         self.messages: list[str] = []
         self._texts: dict[str, str] = {}
         self._last_wf = 0.0
+        self._last_panels = 0.0
 
     def compose(self) -> ComposeResult:
         yield Static(CAUTION, id="caution")
@@ -156,7 +160,10 @@ class SpinrigApp(App):
                 self._wf_seen = snap.waterfall_total
                 wf.add_rows(rows, marks, snap.freqs)
         self._events()
-        self._panels(snap)
+        now = time.monotonic()
+        if now - self._last_panels >= PANEL_PERIOD_S:
+            self._last_panels = now
+            self._panels(snap)
 
     def _events(self) -> None:
         log = self.query_one("#events", RichLog)
