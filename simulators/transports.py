@@ -36,13 +36,19 @@ class Stats:
         self.connections = 0
 
 
-def _produce(stream: SimStream, fast: bool, t0: float, pending: bytearray, heard: bool = True) -> None:
+def _produce(stream: SimStream, fast: bool, t0: float, pending: bytearray, stats: Stats) -> None:
+    """Add the stream's next bytes to ``pending``: in fast mode a chunk once the host has spoken
+    (nothing is produced for nobody) and the backlog is short; in real time everything due by now,
+    dropping the oldest bytes past REALTIME_BACKLOG when nobody reads."""
     if fast:
-        # fast mode waits for the host's first bytes: nothing is produced for nobody
-        if heard and len(pending) < FAST_BACKLOG:
+        if stats.bytes_read > 0 and len(pending) < FAST_BACKLOG:
             pending += stream.produce_chunk()
-    else:
-        pending += stream.produce(time.monotonic() - t0)
+        return
+    pending += stream.produce(time.monotonic() - t0)
+    if len(pending) > REALTIME_BACKLOG:
+        cut = len(pending) - REALTIME_BACKLOG
+        del pending[:cut]
+        stats.bytes_dropped += cut
 
 
 def serve_pty(
@@ -63,11 +69,7 @@ def serve_pty(
     t0 = time.monotonic()
     try:
         while not (stop and stop.is_set()) and (duration is None or stream.time_s < duration):
-            _produce(stream, fast, t0, pending, heard=stats.bytes_read > 0)
-            if not fast and len(pending) > REALTIME_BACKLOG:
-                cut = len(pending) - REALTIME_BACKLOG
-                del pending[:cut]
-                stats.bytes_dropped += cut
+            _produce(stream, fast, t0, pending, stats)
             r, w, _ = select.select([master], [master] if pending else [], [], POLL_S)
             if r:
                 try:
@@ -148,11 +150,7 @@ def serve_tcp(
                     stats.connections += 1
                     pending.clear()
                 continue
-            _produce(stream, fast, t0, pending, heard=stats.bytes_read > 0)
-            if not fast and len(pending) > REALTIME_BACKLOG:
-                cut = len(pending) - REALTIME_BACKLOG
-                del pending[:cut]
-                stats.bytes_dropped += cut
+            _produce(stream, fast, t0, pending, stats)
             r, w, _ = select.select([client], [client] if pending else [], [], POLL_S)
             try:
                 if r:
