@@ -84,7 +84,8 @@ class Engine:
     # ---------------------------------------------------------------- set-up
 
     def _reset_views(self) -> None:
-        self.last_psd = self.last_amp = self.ema = self.peak = None
+        self.last_psd = self.ema = self.peak = None
+        self._amp_factor = None
         self.last_rpm = np.zeros(0)
         self.last_thr = np.zeros(0)
         self.last_valid = np.zeros(0, bool)
