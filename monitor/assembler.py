@@ -264,15 +264,35 @@ class RpmTrack:
         self.rate_hz = rate_hz
         self.capacity = capacity
         self.keep_s = keep_s
-        self._rows = np.zeros((0, 1 + 3 * motors))
+        self._store = np.zeros((capacity + 256, 1 + 3 * motors))  # rows [0, _n) are held
+        self._n = 0
+
+    @property
+    def _rows(self) -> np.ndarray:
+        return self._store[: self._n]
 
     def add(self, u: MotorUpdate) -> None:
         if u.rpm.shape[1] != self.motors or u.t_s.size == 0:
             return
-        rows = np.column_stack([u.t_s, u.rpm, u.throttle, ~u.valid])
-        allr = np.concatenate([self._rows, rows]) if self._rows.size else rows
-        cut = np.searchsorted(allr[:, 0], allr[-1, 0] - self.keep_s)
-        self._rows = allr[max(cut, allr.shape[0] - self.capacity) :]
+        k, m = u.t_s.shape[0], self.motors
+        if k > self.capacity:
+            u = MotorUpdate(u.t_s[-self.capacity :], u.rpm[-self.capacity :], u.throttle[-self.capacity :],
+                            u.valid[-self.capacity :])
+            k = self.capacity
+        st = self._store
+        if self._n + k > st.shape[0]:  # drop the oldest rows: beyond keep_s, or past the capacity
+            t_new = float(u.t_s[-1])
+            cut = int(np.searchsorted(st[: self._n, 0], t_new - self.keep_s))
+            cut = max(cut, self._n + k - self.capacity)
+            st[: self._n - cut] = st[cut : self._n]
+            self._n -= cut
+        n = self._n
+        blk = st[n : n + k]
+        blk[:, 0] = u.t_s
+        blk[:, 1 : 1 + m] = u.rpm
+        blk[:, 1 + m : 1 + 2 * m] = u.throttle
+        np.logical_not(u.valid, out=blk[:, 1 + 2 * m :], casting="unsafe")
+        self._n = n + k
 
     def window(self, t0: np.ndarray, t1: np.ndarray):
         """Mean RPM (F, motors), latest RPM (F, motors), mean throttle (F, motors) and all-valid (F, motors)
@@ -283,9 +303,21 @@ class RpmTrack:
         mthr = np.full((f, m), np.nan)
         latest = np.full((f, m), np.nan)
         ok = np.zeros((f, m), bool)
-        rows = self._rows
-        if rows.shape[0] == 0:
+        rows = self._store[: self._n]
+        if self._n == 0:
             return mean, latest, mthr, ok
+        t = rows[:, 0]
+        lo = np.searchsorted(t, t0, side="left").tolist()
+        hi = np.searchsorted(t, t1, side="left").tolist()
+        for i in range(f):
+            a, b = lo[i], hi[i]
+            if b > a:
+                avg = np.add.reduce(rows[a:b], axis=0) * (1.0 / (b - a))
+                mean[i] = avg[1 : 1 + m]
+                mthr[i] = avg[1 + m : 1 + 2 * m]
+                latest[i] = rows[b - 1, 1 : 1 + m]
+                ok[i] = avg[1 + 2 * m :] == 0
+        return mean, latest, mthr, ok
         t = rows[:, 0]
         lo = np.searchsorted(t, t0, side="left")
         hi = np.searchsorted(t, t1, side="left")

@@ -132,6 +132,8 @@ class CrossingWatch:
         self.zeta = np.array([m.damping_ratio for m in modes])[:, None, None]
         self.half_band = self.f_mode * self.zeta
         self.margin = np.maximum(MARGIN_FRACTION * self.f_mode, MARGIN_HALF_BANDWIDTHS * self.half_band)
+        self._exit_margin = EXIT_MARGIN * self.margin
+        self._exit_band = EXIT_BAND * self.half_band
         shape = (len(modes), motors, len(self.mult))
         self.state = np.zeros(shape, dtype=np.int8)
         self._proposed = np.zeros(shape, dtype=np.int8)
@@ -155,62 +157,88 @@ class CrossingWatch:
         width = max(len(b) for b in band_idx) if band_idx else 1
         #: (modes, width) bin indices of each half-power band, padded by repeating its first bin
         padded = [np.pad(b, (0, width - len(b)), mode="edge") for b in band_idx]
-        self._band_idx = np.array(padded).reshape(len(modes), -1)
-        #: (bins, modes): the floor is the mean level in dB over 0.6..1.4 f_n outside the band
-        self._floor_w = floor_w
+        band = np.array(padded, dtype=np.int64).reshape(len(modes), -1)
+        #: the bins any mode reads (bands and floors): only these are converted to dB
+        self._cols = np.union1d(band.ravel(), np.flatnonzero(floor_w.any(axis=1))).astype(np.int64)
+        #: (modes, width) positions of each band's bins within ``_cols``
+        self._band_idx = np.searchsorted(self._cols, band)
+        #: (cols, modes): the floor is the mean level in dB over 0.6..1.4 f_n outside the band
+        self._floor_w = floor_w[self._cols]
+        self._runs_any = False
+        self._quiet = True  #: every channel clear with no rise pending (the common case: nothing to do)
         # open bands, per channel: RPM low/high and peak level while in the crossing state
         self._b_open = np.zeros(shape, dtype=bool)
-        self._b_lo = np.zeros(shape)
-        self._b_hi = np.zeros(shape)
-        self._b_peak = np.zeros(shape)
+        self._b_lo = np.full(shape, np.inf)
+        self._b_hi = np.full(shape, -np.inf)
+        self._b_peak = np.full(shape, -np.inf)
+        self._any_open = False
         self.bands: list[Band] = []
 
     def levels(self, psd_sum: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """(level, local floor) at each mode in dB for frames' PSD summed over axes (F, bins)."""
-        db = 10 * np.log10(np.maximum(psd_sum, 1e-30))
+        db = 10 * np.log10(np.maximum(psd_sum[:, self._cols], 1e-30))
         level = db[:, self._band_idx].max(axis=2)
         return level, db @ self._floor_w
 
+    def _smoothed(self, levels: np.ndarray, floors: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The running level and floor (F, modes) after each frame (first-order smoothing, in dB)."""
+        f = levels.shape[0]
+        lv = np.empty_like(levels)
+        fl = np.empty_like(floors)
+        cur_l, cur_f = self.level_db, self.floor_db
+        a, al = self.alpha, self.level_alpha
+        for i in range(f):
+            if np.isnan(cur_f[0]):
+                cur_l, cur_f = levels[i].copy(), floors[i].copy()
+            else:
+                cur_f = cur_f + a * (floors[i] - cur_f)
+                cur_l = cur_l + al * (levels[i] - cur_l)
+            lv[i], fl[i] = cur_l, cur_f
+        self.level_db, self.floor_db = cur_l, cur_f
+        return lv, fl
+
     def update(self, t_s: np.ndarray, psd_sum: np.ndarray, rpm_latest: np.ndarray, rpm_mean: np.ndarray) -> list:
-        """Advance over F frames. ``psd_sum`` (F, bins); RPM arrays (F, motors). Returns events."""
+        """Advance over F frames. ``psd_sum`` (F, bins); RPM arrays (F, motors). Returns events.
+
+        Everything that does not depend on the state (geometry, smoothed levels, condition bits)
+        is computed for all frames at once; only the state machine steps frame by frame.
+        """
         events = []
         modes = self.profile.modes
         if not modes:
             return events
-        levels, floors = self.levels(psd_sum)
+        lv_seq, fl_seq = self._smoothed(*self.levels(psd_sum))
         # geometry of every frame at once: order frequencies against the modes, (F, N, M, K)
+        if not np.isfinite(rpm_mean).all():  # no mean over the window: the latest reading stands in
+            rpm_mean = np.where(np.isfinite(rpm_mean), rpm_mean, rpm_latest)
         f_now = rpm_latest[:, None, :, None] * self._mult60
-        f_avg = np.where(np.isfinite(rpm_mean), rpm_mean, rpm_latest)[:, None, :, None] * self._mult60
         d_now = np.abs(f_now - self.f_mode)
-        closing = d_now < np.abs(f_avg - self.f_mode) - 1e-6
+        closing = d_now < np.abs(rpm_mean[:, None, :, None] * self._mult60 - self.f_mode) - 1e-6
         in_margin = d_now <= self.margin
-        base = (in_margin & closing).astype(np.int8)
-        base |= (d_now <= self.half_band).astype(np.int8) << 1
-        base |= (d_now > EXIT_MARGIN * self.margin).astype(np.int8) << 2
-        far = d_now > EXIT_BAND * self.half_band
-        finite = np.all(np.isfinite(rpm_latest), axis=1)
+        over = (lv_seq - fl_seq)[:, :, None, None]  # (F, N, 1, 1)
+        approach = in_margin & closing
+        hit = (d_now <= self.half_band) | (in_margin & (over >= LEVEL_OVER_FLOOR_DB))
+        gone = d_now > self._exit_margin
+        left = (d_now > self._exit_band) & ((over < LEVEL_OVER_FLOOR_DB - RELEASE_DB) | ~in_margin)
+        # the condition bits of the transition table, from the booleans viewed as 0/1 bytes
+        cond = approach.view(np.uint8) | (hit.view(np.uint8) << 1)
+        cond |= gone.view(np.uint8) << 2
+        cond |= left.view(np.uint8) << 3
+        finite = np.isfinite(rpm_latest).all(axis=1).tolist()
+        rising = (approach | hit).reshape(cond.shape[0], -1).any(axis=1).tolist()  # any approach or hit
         for i in range(len(t_s)):
-            level, floor = levels[i], floors[i]
-            if np.isnan(self.floor_db[0]):
-                self.floor_db, self.level_db = floor.copy(), level.copy()
-            else:
-                self.floor_db += self.alpha * (floor - self.floor_db)
-                self.level_db += self.level_alpha * (level - self.level_db)
-            if not finite[i]:
-                continue
-            over = (self.level_db - self.floor_db)[:, None, None]
-            cond = base[i] | ((in_margin[i] & (over >= LEVEL_OVER_FLOOR_DB)).astype(np.int8) << 1)
-            cond |= (far[i] & ((over < LEVEL_OVER_FLOOR_DB - RELEASE_DB) | ~in_margin[i])).astype(np.int8) << 3
+            if not finite[i] or (self._quiet and not rising[i]):
+                continue  # from all-clear, nothing but an approach or a hit can change a state
             s = self.state
-            new = _TRANSITIONS[s, cond]
+            new = _TRANSITIONS[s, cond[i]]
             # rises need PERSIST_FRAMES consecutive proposals (a spin-up flashing past is no crossing)
             rise = new > s
-            if rise.any() or self._runs.any():
+            if self._runs_any or rise.any():
                 self._runs = np.where(rise & (new == self._proposed), self._runs + 1, rise.astype(np.int16))
                 self._proposed = np.where(rise, new, 0).astype(np.int8)
                 new = np.where(rise & (self._runs < PERSIST_FRAMES), s, new).astype(np.int8)
-            if self._b_open.any() or (new == CROSSING).any():
-                self._track_bands(new, rpm_latest[i], self.level_db, t_s[i])
+                self._runs_any = bool(self._runs.any())
+            self._track_bands(new, rpm_latest[i], lv_seq[i])
             changed = new != s
             if changed.any():
                 r_now = rpm_latest[i]
@@ -221,10 +249,11 @@ class CrossingWatch:
                         CrossingEvent(
                             float(t_s[i]), STATE_NAMES[new[n, m, k]], mode.name, mode.freq_hz, int(m) + 1, mult,
                             order_label(mult, self.profile.blades), float(r_now[m]), float(f_now[i, 0, m, k]),
-                            float(self.level_db[n]), float(self.floor_db[n]), mode.rpm_band(mult),
+                            float(lv_seq[i, n]), float(fl_seq[i, n]), mode.rpm_band(mult),
                         )
                     )
             self.state = new
+            self._quiet = not (self._runs_any or new.any())
         return events
 
     def _band(self, n: int, m: int, k: int) -> Band:
@@ -233,23 +262,21 @@ class CrossingWatch:
         return Band(mode.name, mode.freq_hz, mult, order_label(mult, self.profile.blades), int(m) + 1,
                     float(self._b_lo[n, m, k]), float(self._b_hi[n, m, k]), float(self._b_peak[n, m, k]))
 
-    def _track_bands(self, new: np.ndarray, rpm: np.ndarray, level: np.ndarray, t: float) -> None:
+    def _track_bands(self, new: np.ndarray, rpm: np.ndarray, level: np.ndarray) -> None:
+        """Open, extend and close the RPM bands of channels in the crossing state (one frame)."""
         crossing = new == CROSSING
+        if not self._any_open and not crossing.any():
+            return
         closing = self._b_open & ~crossing
         if closing.any():
             self.bands.extend(self._band(n, m, k) for n, m, k in zip(*np.nonzero(closing), strict=True))
-        r = rpm[None, :, None]
-        lv = level[:, None, None]
-        opening = crossing & ~self._b_open
-        cont = crossing & self._b_open
-        np.minimum(self._b_lo, r, out=self._b_lo, where=cont)
-        np.maximum(self._b_hi, r, out=self._b_hi, where=cont)
-        np.maximum(self._b_peak, lv, out=self._b_peak, where=cont)
-        if opening.any():
-            np.copyto(self._b_lo, r, where=opening)
-            np.copyto(self._b_hi, r, where=opening)
-            np.copyto(self._b_peak, lv, where=opening)
+            self._b_lo[closing], self._b_hi[closing], self._b_peak[closing] = np.inf, -np.inf, -np.inf
+        # not-open channels hold +inf / -inf, so opening and extending are the same min / max
+        np.minimum(self._b_lo, rpm[None, :, None], out=self._b_lo, where=crossing)
+        np.maximum(self._b_hi, rpm[None, :, None], out=self._b_hi, where=crossing)
+        np.maximum(self._b_peak, level[:, None, None], out=self._b_peak, where=crossing)
         self._b_open = crossing
+        self._any_open = bool(crossing.any())
 
     def all_bands(self) -> list[Band]:
         """Closed bands and the ones still open, merged per (mode, order) over all motors."""

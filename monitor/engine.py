@@ -12,7 +12,6 @@ import threading
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.signal import lfilter
 
 import firmware_protocol as fp
 
@@ -217,14 +216,15 @@ class Engine:
             psd_rest = psd[1:]
         else:
             psd_rest = psd
-        if psd_rest.shape[0] == 1:
+        nr = psd_rest.shape[0]
+        if nr == 1:
             self.ema += alpha * (psd_rest[0] - self.ema)
-        elif psd_rest.shape[0] > 1:  # e_k = (1 - a) e_(k-1) + a p_k over the frames, one call
-            out, _ = lfilter([alpha], [1.0, alpha - 1.0], psd_rest, axis=0, zi=((1 - alpha) * self.ema)[None])
-            self.ema = out[-1].copy()
+        elif nr > 1:  # e_k = (1 - a) e_(k-1) + a p_k unrolled: (1 - a)^F e_0 + sum_j a (1 - a)^(F-1-j) p_j
+            decay = (1.0 - alpha) ** np.arange(nr - 1, -1, -1)
+            self.ema = (1.0 - alpha) ** nr * self.ema + np.tensordot(alpha * decay, psd_rest, axes=1)
         top = psd.max(axis=0)
         self.peak = top.copy() if self.peak is None else np.maximum(self.peak, top, out=self.peak)
-        self.waterfall.append(fb.psd.astype(np.float32))
+        self.waterfall.append(fb.psd)  # stored as float32
         marks = np.zeros((f, 2))
         marks[:, 0] = t1
         marks[0, 1] = 1.0 if gap_first else 0.0

@@ -42,18 +42,20 @@ def order_amplitudes(amp: np.ndarray, freqs: np.ndarray, bin_hz: float, search_b
     root-sum-square over axes.
     """
     f, nbins, c = amp.shape
-    k = np.rint(np.where(np.isfinite(freqs), freqs, -1.0) / bin_hz).astype(np.int64)  # (F, M, K)
-    if amp_factor is not None:
-        amp = np.sqrt(amp) * amp_factor[None, :, None]
-    # the largest bin within +-search_bins: a running maximum along the bins, then one gather
-    best = amp.copy()
-    for o in range(1, search_bins + 1):
-        np.maximum(best[:, :-o], amp[:, o:], out=best[:, :-o])  # neighbour above
-        np.maximum(best[:, o:], amp[:, :-o], out=best[:, o:])  # neighbour below
-    idx = np.clip(k, 0, nbins - 1)
-    per_axis = best[np.arange(f)[:, None, None], idx, :]  # (F, M, K, C)
-    rss = np.sqrt(np.sum(per_axis**2, axis=-1))
+    k = np.rint(np.where(np.isfinite(freqs), freqs, -1.0) * (1.0 / bin_hz)).astype(np.int64)  # (F, M, K)
+    # the largest bin within +-search_bins: gather those bins only (a few per order), then max
+    offsets = np.arange(-search_bins, search_bins + 1)
+    near = np.clip(k[..., None] + offsets, 0, nbins - 1)  # (F, M, K, S)
+    flat = (near + (np.arange(f) * nbins)[:, None, None, None])[..., None] * c + np.arange(c)  # (F, M, K, S, C)
+    got = np.take(amp.reshape(-1), flat)
+    if amp_factor is not None:  # amplitude^2 = PSD x factor^2: the max is taken on squares, one sqrt at the end
+        fac = amp_factor[near]
+        got = got * (fac * fac)[..., None]
+    else:
+        got = got * got
+    per_axis2 = got.max(axis=3)  # (F, M, K, C) squared amplitude per axis
+    rss = np.sqrt(np.add.reduce(per_axis2, axis=-1))
     bad = (k < 1) | (k >= nbins)
     if not with_axis:
         return np.where(bad, np.nan, rss), None
-    return np.where(bad, np.nan, rss), np.where(bad, -1, np.argmax(per_axis, axis=-1))
+    return np.where(bad, np.nan, rss), np.where(bad, -1, np.argmax(per_axis2, axis=-1))

@@ -138,31 +138,60 @@ class RollingSTFT:
     def reset(self) -> None:
         """Start a new segment (after a gap): buffered samples are dropped."""
         self.segment += 1
-        self._buf = np.empty((self.channels, 0), dtype=np.float64)  # (C, samples): rows contiguous
-        self._buf_start = 0  # segment index of _buf[:, 0]
+        # (C, capacity) contiguous store; samples of the segment from index _buf_start sit in
+        # columns [0, _fill); frames are strided views into it (no copy, no per-frame Python)
+        if not hasattr(self, "_store"):
+            self._store = np.zeros((self.channels, 4 * self.config.nperseg), dtype=np.float64)
+        self._fill = 0
+        self._buf_start = 0  # segment index of column 0
         self._next = 0  # segment index where the next frame starts
         self.samples = 0  # samples pushed into this segment
 
+    @property
+    def _buf(self) -> np.ndarray:
+        """The buffered samples (C, n): a view."""
+        return self._store[:, : self._fill]
+
+    def _append(self, x: np.ndarray) -> None:
+        """Append (C, n) samples, dropping columns no future frame needs and growing if needed."""
+        n = x.shape[1]
+        keep_from = self._next - self._buf_start  # columns before this are never read again
+        if self._fill + n > self._store.shape[1]:
+            if keep_from > 0:
+                tail = self._fill - keep_from
+                self._store[:, :tail] = self._store[:, keep_from : self._fill]
+                self._fill = tail
+                self._buf_start = self._next
+            if self._fill + n > self._store.shape[1]:
+                grown = np.zeros((self.channels, 2 * (self._fill + n)), dtype=np.float64)
+                grown[:, : self._fill] = self._store[:, : self._fill]
+                self._store = grown
+        self._store[:, self._fill : self._fill + n] = x
+        self._fill += n
+
     def push(self, samples: np.ndarray) -> FrameBatch | None:
         """Add samples (n, C) in deg/s; returns every frame completed by them, or None."""
-        n_per = self.config.nperseg
-        hop = self.config.hop
+        cfg = self.config
+        n_per = cfg.nperseg
+        hop = cfg.hop
         x = np.asarray(samples, dtype=np.float64).T
-        self._buf = np.concatenate([self._buf, x], axis=1) if self._buf.size else np.ascontiguousarray(x)
+        self._append(x)
         self.samples += x.shape[1]
-        end = self._buf_start + self._buf.shape[1]
+        end = self._buf_start + self._fill
         if end - self._next < n_per:
             return None
-        starts = np.arange(self._next, end - n_per + 1, hop)
-        rel = starts - self._buf_start
-        frames = sliding_window_view(self._buf, n_per, axis=1)[:, rel]  # (C, F, N) view, rows contiguous
+        count = (end - n_per - self._next) // hop + 1
+        starts = self._next + hop * np.arange(count)
+        st = self._store
+        s0, s1 = st.strides
+        # (C, F, N) view of the frames: frame j starts hop j columns after the first
+        frames = np.ndarray((self.channels, count, n_per), dtype=st.dtype, buffer=st,
+                            offset=(self._next - self._buf_start) * s1, strides=(s0, hop * s1, s1))
         spec = np.fft.rfft(frames * self.win, axis=2)  # (C, F, bins)
-        mean = frames.mean(axis=2)
+        mean = np.add.reduce(frames, axis=2) * (1.0 / n_per)
         spec[:, :, self._detrend_bins] -= mean[:, :, None] * self._detrend_w  # detrend='constant'
 
         mag2 = spec.real**2 + spec.imag**2
         psd = np.transpose(mag2, (1, 2, 0)) * self.psd_scale[None, :, None]  # (F, bins, C)
         self._next = int(starts[-1] + hop)
-        self._buf = self._buf[:, self._next - self._buf_start :]
-        self._buf_start = self._next
         return FrameBatch(self.segment, starts, psd, self.amp_factor)

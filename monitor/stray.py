@@ -71,7 +71,8 @@ class StrayPeakFinder:
         db = 10 * np.log10(np.maximum(psd.sum(axis=1), 1e-30))
         floor = ndimage.median_filter(db, size=FLOOR_BINS, mode="nearest")
         idx, _ = signal.find_peaks(db, height=floor + MIN_OVER_FLOOR_DB, distance=3)
-        rpm_level = float(np.nanmean(rpm_mean)) if np.any(np.isfinite(rpm_mean)) else np.nan
+        known = rpm_mean[np.isfinite(rpm_mean)]
+        rpm_level = float(known.mean()) if known.size else np.nan
         out = []
         if idx.size:
             f = self.freqs[idx]

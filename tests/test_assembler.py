@@ -121,3 +121,32 @@ def test_rpm_track_window_means():
     assert mean[0].tolist() == pytest.approx([140.0, 7.0]) and latest[0].tolist() == [180.0, 7.0] and ok.all()
     mean, _, _, ok = tr.window(np.array([5.0]), np.array([6.0]))
     assert np.isnan(mean).all() and not ok.any()
+
+
+def test_rpm_track_window_equals_the_definition_across_store_compaction():
+    # many small updates push the store past its capacity; every window must still equal the
+    # plain mean over the readings with t0 <= t < t1 (held ones: the last keep_s / capacity)
+    rng = np.random.default_rng(3)
+    tr = RpmTrack(3, capacity=300, rate_hz=500, keep_s=0.5)
+    t_all, r_all, v_all = [], [], []
+    t = 0.0
+    for _ in range(200):
+        k = int(rng.integers(1, 12))
+        ts = t + np.arange(1, k + 1) / 500.0
+        t = float(ts[-1])
+        rpm = rng.uniform(1000, 9000, size=(k, 3))
+        valid = rng.random((k, 3)) > 0.05
+        tr.add(MotorUpdate(ts, rpm, rng.random((k, 3)), valid))
+        t_all.append(ts), r_all.append(rpm), v_all.append(valid)
+        ts_cat, r_cat, v_cat = np.concatenate(t_all), np.concatenate(r_all), np.concatenate(v_all)
+        t0 = np.array([t - 0.2, t - 0.05])
+        t1 = np.array([t - 0.1, t + 0.001])
+        mean, latest, _, ok = tr.window(t0, t1)
+        for i in range(2):
+            sel = (ts_cat >= t0[i]) & (ts_cat < t1[i])
+            if not sel.any():
+                assert np.isnan(mean[i]).all() and not ok[i].any()
+                continue
+            np.testing.assert_allclose(mean[i], r_cat[sel].mean(axis=0), rtol=1e-12)
+            assert latest[i].tolist() == r_cat[sel][-1].tolist()
+            assert ok[i].tolist() == v_cat[sel].all(axis=0).tolist()

@@ -39,6 +39,29 @@ def test_order_amplitude_reads_a_known_tone():
     assert rss[0, 0, 0] == pytest.approx(4.0) and axis[0, 0, 0] == 1
 
 
+@given(st.integers(0, 2**32 - 1), st.integers(1, 3), st.integers(1, 2))
+def test_order_amplitudes_equal_the_definition(seed, frames, search):
+    # definition: per frame, motor, order and axis the largest sqrt(PSD) x factor within
+    # +-search bins of the order's bin (clipped to the spectrum), root-sum-square over the axes
+    rng = np.random.default_rng(seed)
+    nb, bin_hz = 257, 4.0
+    psd = rng.exponential(size=(frames, nb, 3))
+    factor = rng.uniform(0.5, 2.0, size=nb)
+    rpm = rng.uniform(0.0, 20_000.0, size=(frames, 2))
+    rpm[0, 0] = np.nan
+    freqs = order_freqs(rpm, 3)
+    rss, axis = order_amplitudes(psd, freqs, bin_hz, search_bins=search, amp_factor=factor)
+    amp = np.sqrt(psd) * factor[None, :, None]
+    for f, m, k in np.ndindex(freqs.shape):
+        b = int(np.rint(freqs[f, m, k] / bin_hz)) if np.isfinite(freqs[f, m, k]) else -1
+        if b < 1 or b >= nb:
+            assert np.isnan(rss[f, m, k]) and axis[f, m, k] == -1
+            continue
+        best = amp[f, max(0, b - search) : b + search + 1].max(axis=0)
+        assert rss[f, m, k] == pytest.approx(np.sqrt(np.sum(best**2)), rel=1e-12)
+        assert axis[f, m, k] == int(np.argmax(best))
+
+
 def test_band_in_rpm_is_60_f_1_pm_zeta_over_k():
     m = Mode("arm", 120.0, 0.05)
     lo, hi = m.rpm_band(2.0)
