@@ -172,6 +172,7 @@ class CrossingWatch:
         self._b_hi = np.full(shape, -np.inf)
         self._b_peak = np.full(shape, -np.inf)
         self._any_open = False
+        self._any_state = False  #: some channel is not clear
         self.bands: list[Band] = []
 
     def levels(self, psd_sum: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -238,9 +239,9 @@ class CrossingWatch:
                 self._proposed = np.where(rise, new, 0).astype(np.int8)
                 new = np.where(rise & (self._runs < PERSIST_FRAMES), s, new).astype(np.int8)
                 self._runs_any = bool(self._runs.any())
-            self._track_bands(new, rpm_latest[i], lv_seq[i])
             changed = new != s
             if changed.any():
+                self._open_close_bands(new)
                 r_now = rpm_latest[i]
                 for n, m, k in zip(*np.nonzero(changed), strict=True):
                     mode = modes[n]
@@ -252,8 +253,15 @@ class CrossingWatch:
                             float(lv_seq[i, n]), float(fl_seq[i, n]), mode.rpm_band(mult),
                         )
                     )
-            self.state = new
-            self._quiet = not (self._runs_any or new.any())
+                self.state = new
+                self._quiet = not (self._runs_any or self._any_state)
+            else:
+                self._quiet = not (self._runs_any or self._any_state)
+            if self._any_open:  # extend the open bands (channels in the crossing state) by this frame
+                crossing = self._b_open
+                np.minimum(self._b_lo, rpm_latest[i][None, :, None], out=self._b_lo, where=crossing)
+                np.maximum(self._b_hi, rpm_latest[i][None, :, None], out=self._b_hi, where=crossing)
+                np.maximum(self._b_peak, lv_seq[i][:, None, None], out=self._b_peak, where=crossing)
         return events
 
     def _band(self, n: int, m: int, k: int) -> Band:
@@ -262,21 +270,17 @@ class CrossingWatch:
         return Band(mode.name, mode.freq_hz, mult, order_label(mult, self.profile.blades), int(m) + 1,
                     float(self._b_lo[n, m, k]), float(self._b_hi[n, m, k]), float(self._b_peak[n, m, k]))
 
-    def _track_bands(self, new: np.ndarray, rpm: np.ndarray, level: np.ndarray) -> None:
-        """Open, extend and close the RPM bands of channels in the crossing state (one frame)."""
+    def _open_close_bands(self, new: np.ndarray) -> None:
+        """After a state change: close the bands of channels that left the crossing state and open
+        those that entered it (not-open channels hold +inf / -inf, so extending opens them)."""
         crossing = new == CROSSING
-        if not self._any_open and not crossing.any():
-            return
         closing = self._b_open & ~crossing
         if closing.any():
             self.bands.extend(self._band(n, m, k) for n, m, k in zip(*np.nonzero(closing), strict=True))
             self._b_lo[closing], self._b_hi[closing], self._b_peak[closing] = np.inf, -np.inf, -np.inf
-        # not-open channels hold +inf / -inf, so opening and extending are the same min / max
-        np.minimum(self._b_lo, rpm[None, :, None], out=self._b_lo, where=crossing)
-        np.maximum(self._b_hi, rpm[None, :, None], out=self._b_hi, where=crossing)
-        np.maximum(self._b_peak, level[:, None, None], out=self._b_peak, where=crossing)
         self._b_open = crossing
         self._any_open = bool(crossing.any())
+        self._any_state = bool(new.any())
 
     def all_bands(self) -> list[Band]:
         """Closed bands and the ones still open, merged per (mode, order) over all motors."""

@@ -35,6 +35,11 @@ class EngineConfig:
     waterfall_rows: int = 256
     history_s: float = 30.0  #: samples kept for analysis (bounded)
     stray_peaks: bool = True
+    #: detectors (motor windows, orders, crossing watch, stray peaks) run over the frames gathered
+    #: since their last run once the oldest has waited this long (stream seconds); spectra,
+    #: averages and the waterfall are updated at once. Results do not depend on it, only the
+    #: per-call cost and how soon events appear (0 runs them on every frame batch).
+    detect_every_s: float = 0.1
 
 
 @dataclass(frozen=True)
@@ -74,6 +79,10 @@ class Engine:
         self._seg_t0 = 0.0
         self._last_t = 0.0
         self._rpm_estimated = False
+        self._last_sample_t = 0.0
+        self._pending: list = []  #: frame batches waiting for the detectors
+        self._carry: list = []  #: events of a flush outside feed(), handed out by the next call
+        self.detected = 0  #: frames the detectors have seen
         self.crossing: CrossingWatch | None = None
         self.stray: StrayPeakFinder | None = None
         self.estimator: RpmEstimator | None = None
@@ -110,6 +119,7 @@ class Engine:
         self.estimator = RpmEstimator(freqs, self.profile.blades, window=self.config.window)
         rate = max(1.0, float(info.motor_state_rate_hz))
         self.rpm_track = RpmTrack(motors, capacity=max(1000, int(rate * 20)), rate_hz=rate)
+        self._ema_alpha = 1.0 - np.exp(-hop_s / self.config.ema_tau_s)
         self._stray_every = max(1, int(round(0.2 / hop_s)))  # the stray search runs at about 5 Hz
         self._reset_views()
         bins = freqs.shape[0]
@@ -121,6 +131,7 @@ class Engine:
     def reconfigure(self, config: EngineConfig) -> None:
         """New window length, overlap or window: spectra restart (the waterfall is cleared)."""
         with self._lock:
+            self._detect(self._carry)  # waiting frames belong to the old spectra
             self.config = config
             if self.info is not None:
                 info, self.info = self.info, None
@@ -129,6 +140,7 @@ class Engine:
 
     def set_profile(self, profile: Profile) -> None:
         with self._lock:
+            self._detect(self._carry)  # waiting frames are judged against the profile they arrived under
             self.profile = profile
             if self.info is not None and self.spec is not None:
                 hop_s = self.spec.hop / self.spec.fs_hz
@@ -140,9 +152,14 @@ class Engine:
     # ---------------------------------------------------------------- feeding
 
     def feed(self, items) -> list:
-        """Process assembled items; returns the events they caused (also kept in ``events``)."""
-        new: list = []
+        """Process assembled items; returns the events they caused (also kept in ``events``).
+
+        Events of frames still waiting for the detectors come from a later call (or from
+        :meth:`flush`); every event keeps its stream time, and their order is the stream's.
+        """
         with self._lock:
+            new: list = self._carry
+            self._carry = []
             for it in items:
                 if isinstance(it, Samples):
                     self._samples(it, new)
@@ -150,6 +167,7 @@ class Engine:
                     if self.rpm_track is not None:
                         self.rpm_track.add(it)
                 elif isinstance(it, Gap):
+                    self._detect(new)  # the frames before the gap first: events stay in stream order
                     if self.stft is not None:
                         self.stft.reset()
                     self._gap_pending = True
@@ -157,16 +175,31 @@ class Engine:
                     msg = f"{it.reason}" + (f": {it.lost_samples} samples" if it.lost_samples else "")
                     new.append(Notice(kind, it.t_s, msg, {"lost_samples": it.lost_samples}))
                 elif isinstance(it, DeviceChange):
+                    self._detect(new)
                     self._configure(it.info)
                     i = it.info
                     filt = "raw" if i.raw else "FILTERED on the device"
                     text = (f"{i.board_id or 'device'}: gyro {i.sample_rate_hz:g} Hz, {float(i.counts_per_dps):g} "
                             f"counts per deg/s, {filt}, {i.motor_count} motors, {i.pole_pairs} pole pairs")
                     new.append(Notice("device", self._last_t, text, {"reboot": it.reboot}))
-            self.events.extend(new)
-            if len(self.events) > 10_000:
-                del self.events[:-10_000]
+            if self._pending and self._last_sample_t - self._pending[0][1][0] >= self.config.detect_every_s:
+                self._detect(new)
+            self._keep(new)
         return new
+
+    def flush(self) -> list:
+        """Run the detectors over every frame still waiting (end of a stream); returns the events."""
+        with self._lock:
+            new: list = self._carry
+            self._carry = []
+            self._detect(new)
+            self._keep(new)
+        return new
+
+    def _keep(self, new: list) -> None:
+        self.events.extend(new)
+        if len(self.events) > 10_000:
+            del self.events[:-10_000]
 
     def _samples(self, s: Samples, new: list) -> None:
         if self.stft is None:
@@ -177,40 +210,22 @@ class Engine:
             if self.stft.samples:
                 self.stft.reset()
         self.history.append(s.dps)
-        self._last_t = s.t0_s + s.dps.shape[0] / s.fs_hz
+        self._last_t = self._last_sample_t = s.t0_s + s.dps.shape[0] / s.fs_hz
         fb = self.stft.push(s.dps)
         if fb is not None:
             self._frames(fb, new)
 
     def _frames(self, fb, new: list) -> None:
+        """A batch of new frames: spectra, averages, peak hold and waterfall now; detectors later."""
         spec = self.spec
         fs = spec.fs_hz
-        n = spec.nperseg
-        t0 = self._seg_t0 + fb.start / fs
-        t1 = t0 + n / fs
-        f = len(fb)
-        motors = self.info.motor_count
-        psd_sum = fb.psd.sum(axis=2)
-        if motors:
-            # readings strictly before the frame's last sample: all of them arrived before it did
-            mean, latest, thr, valid = self.rpm_track.window(t0, t1 - 1.0 / fs)
-        else:
-            mean = latest = thr = np.full((f, 0), np.nan)
-            valid = np.zeros((f, 0), bool)
-        estimated = np.zeros(f, bool)
-        no_tel = ~valid.any(axis=1) if motors else np.ones(f, bool)
-        if np.any(no_tel) and motors:
-            for i in np.flatnonzero(no_tel):
-                r = self.estimator.estimate(psd_sum[i])
-                mean[i] = r
-                latest[i] = r
-                estimated[i] = True
-        ofreq = order_freqs(mean, self.profile.blades)
-        oamp, _ = order_amplitudes(fb.psd, ofreq, spec.bin_hz, amp_factor=fb.amp_factor, with_axis=False)
-        # averaged spectrum and peak hold
-        alpha = 1.0 - np.exp(-(spec.hop / fs) / self.config.ema_tau_s)
-        gap_first = self._gap_pending
+        t0 = self._seg_t0 + fb.start * (1.0 / fs)
+        t1 = t0 + spec.nperseg / fs
+        f = t0.shape[0]
         psd = fb.psd
+        # averaged spectrum and peak hold
+        alpha = self._ema_alpha
+        gap_first = self._gap_pending
         if self.ema is None or gap_first:  # the average restarts after a gap, the peak hold does not
             self.ema = psd[0].copy()
             psd_rest = psd[1:]
@@ -222,30 +237,71 @@ class Engine:
         elif nr > 1:  # e_k = (1 - a) e_(k-1) + a p_k unrolled: (1 - a)^F e_0 + sum_j a (1 - a)^(F-1-j) p_j
             decay = (1.0 - alpha) ** np.arange(nr - 1, -1, -1)
             self.ema = (1.0 - alpha) ** nr * self.ema + np.tensordot(alpha * decay, psd_rest, axes=1)
-        top = psd.max(axis=0)
-        self.peak = top.copy() if self.peak is None else np.maximum(self.peak, top, out=self.peak)
-        self.waterfall.append(fb.psd)  # stored as float32
+        top = psd[0] if f == 1 else psd.max(axis=0)
+        if self.peak is None:
+            self.peak = top.copy()
+        else:
+            np.maximum(self.peak, top, out=self.peak)
+        self.waterfall.append(psd)  # stored as float32
         marks = np.zeros((f, 2))
         marks[:, 0] = t1
         marks[0, 1] = 1.0 if gap_first else 0.0
         self.waterfall_t.append(marks)
         self._gap_pending = False
+        self._pending.append((t0, t1, psd, fb.amp_factor, self.frames))
+        self.frames += f
+        self.last_psd = psd[-1]
+        self._amp_factor = fb.amp_factor  # amplitude of the newest frame is derived when a view asks
+        self._last_t = float(t1[-1])
+        if self.config.detect_every_s <= 0:
+            self._detect(new)
+
+    def _detect(self, new: list) -> None:
+        """The detectors over the waiting frames, in one batch: motor windows, orders, crossings, stray peaks."""
+        if not self._pending:
+            return
+        pend, self._pending = self._pending, []
+        if len(pend) == 1:
+            t0, t1, psd, amp_factor, first = pend[0]
+        else:
+            t0 = np.concatenate([p[0] for p in pend])
+            t1 = np.concatenate([p[1] for p in pend])
+            psd = np.concatenate([p[2] for p in pend])
+            amp_factor, first = pend[0][3], pend[0][4]
+        spec = self.spec
+        fs = spec.fs_hz
+        f = t0.shape[0]
+        motors = self.info.motor_count
+        psd_sum = np.add.reduce(psd, axis=2)
+        estimated = np.zeros(f, bool)
+        if motors:
+            # readings strictly before the frame's last sample: all of them arrived before it did
+            mean, latest, thr, valid = self.rpm_track.window(t0, t1 - 1.0 / fs)
+            told = valid.any(axis=1)
+            if not told.all():  # no telemetry in some frame: estimate the speed from the spectrum
+                for i in np.flatnonzero(~told):
+                    r = self.estimator.estimate(psd_sum[i])
+                    mean[i] = r
+                    latest[i] = r
+                    estimated[i] = True
+        else:
+            mean = latest = thr = np.full((f, 0), np.nan)
+            valid = np.zeros((f, 0), bool)
+        ofreq = order_freqs(mean, self.profile.blades)
+        oamp, _ = order_amplitudes(psd, ofreq, spec.bin_hz, amp_factor=amp_factor, with_axis=False)
         if self.crossing is not None and motors:
             new.extend(self.crossing.update(t1, psd_sum, latest, mean))
         if self.stray is not None:
-            for i in range(f):
-                if (self.frames + i) % self._stray_every == 0:
-                    new.extend(self.stray.update(float(t1[i]), fb.psd[i], mean[i] if motors else np.zeros(0)))
-        self.frames += f
-        self.last_psd = fb.psd[-1]
-        self._amp_factor = fb.amp_factor  # amplitude of the newest frame is derived when a view asks
+            every = self._stray_every
+            for i in range((-first) % every, f, every):  # frames whose index is a multiple of `every`
+                new.extend(self.stray.update(float(t1[i]), psd[i], mean[i] if motors else np.zeros(0)))
+        self.detected = first + f
         self.last_rpm = mean[-1]
         self.last_thr = thr[-1]
         self.last_valid = valid[-1]
         self._rpm_estimated = bool(estimated[-1])
         self.last_order_hz = ofreq[-1]
         self.last_order_amp = oamp[-1]
-        self._last_t = float(t1[-1])
 
     # ---------------------------------------------------------------- reading
 

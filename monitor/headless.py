@@ -274,6 +274,7 @@ def run_csv(args, profile: Profile) -> int:
     printer = EventPrinter(as_json=args.json, events_file=Path(args.events) if args.events else None)
     for chunk in items:
         printer(engine.feed(chunk))
+    printer(engine.flush())
     printer.close()
     s = summary(engine, {}, printer, {})
     print_summary(s, sys.stdout, args.json)

@@ -36,14 +36,17 @@ class Session:
     # ---------------------------------------------------------------- live
 
     def pump(self, timeout: float = 0.1, budget: int = 200) -> list:
-        """Process what the link delivered (waiting up to ``timeout`` for the first item)."""
+        """Process what the link delivered (waiting up to ``timeout`` for the first item).
+
+        When nothing came, frames still waiting for the detectors are finished (the stream is idle).
+        """
         if self.link is None:
             return []
         events = []
         try:
             first = self.link.queue.get(timeout=timeout)
         except queue.Empty:
-            return events
+            return self.engine.flush()
         batch = [first]
         for _ in range(budget):
             try:
@@ -127,4 +130,5 @@ class CaptureReplay:
                 dec.reset()
                 yield self.engine.feed(self.session.assembler.mark_reconnect(ch.host_s))
         yield flush()
+        yield self.engine.flush()
         self.decoder = dec

@@ -23,7 +23,6 @@ from dataclasses import dataclass
 from typing import Literal, get_args
 
 import numpy as np
-from numpy.lib.stride_tricks import sliding_window_view
 from scipy import signal
 
 WindowName = Literal["hann", "flattop"]
