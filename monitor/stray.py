@@ -11,7 +11,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import ndimage, signal
+from scipy import ndimage
 
 from .orders import order_multipliers
 from .profile import Profile
@@ -22,6 +22,23 @@ MIN_HITS = 3  #: searches (about 5 a second) in which the peak was seen
 MIN_SPAN_S = 0.5
 MIN_RPM_CHANGE = 0.05  #: relative change of the mean motor speed while the peak held still
 FLOOR_BINS = 41
+
+
+def local_peaks(x: np.ndarray, height: np.ndarray, distance: int = 1) -> np.ndarray:
+    """Indices of strict local maxima with ``x >= height`` there, at least ``distance`` apart
+    (the higher kept first): ``scipy.signal.find_peaks(x, height=height, distance=distance)``
+    for data without flat tops (equal neighbours), in fewer calls (checked against it in tests)."""
+    mid = x[1:-1]
+    cand = np.flatnonzero((mid > x[:-2]) & (mid > x[2:]) & (mid >= height[1:-1])) + 1
+    if distance <= 1 or cand.size < 2 or np.diff(cand).min() >= distance:
+        return cand
+    blocked = np.zeros(x.shape[0] + 2 * distance, bool)
+    keep = []
+    for c in cand[np.argsort(-x[cand], kind="stable")].tolist():
+        if not blocked[c + distance]:
+            keep.append(c)
+            blocked[c + 1 : c + 2 * distance] = True  # bins c - distance + 1 .. c + distance - 1
+    return np.sort(np.array(keep, dtype=cand.dtype))
 
 
 @dataclass(frozen=True)
@@ -52,13 +69,16 @@ class StrayPeakFinder:
         self.fmin = fmin_hz
         self.fmax = fmax_hz if fmax_hz is not None else float(freqs[-1]) * 0.9
         self.mult = order_multipliers(profile.blades)
+        #: each mode's exclusion zone: its half-power band widened to 2 zeta f_n plus 1.5 bins
+        self._mode_hz = np.array([m.freq_hz for m in profile.modes])
+        self._mode_tol = np.array([2 * m.damping_ratio * m.freq_hz + 1.5 * self.bin_hz for m in profile.modes])
         self._tracks: dict[int, dict] = {}
         self.reported: list[StrayPeak] = []
 
     def _excluded(self, f: np.ndarray, rpm: np.ndarray) -> np.ndarray:
         bad = (f < self.fmin) | (f > self.fmax)
-        for m in self.profile.modes:
-            bad |= np.abs(f - m.freq_hz) <= 2 * m.damping_ratio * m.freq_hz + 1.5 * self.bin_hz
+        if self._mode_hz.size:
+            bad |= (np.abs(f[:, None] - self._mode_hz) <= self._mode_tol).any(axis=1)
         r = rpm[np.isfinite(rpm)]
         if r.size:
             orders = (r[:, None] / 60.0 * self.mult[None, :]).ravel()
@@ -70,7 +90,7 @@ class StrayPeakFinder:
         """One frame: ``psd`` (bins, 3) in (deg/s)^2/Hz, ``rpm_mean`` (motors,). Returns new reports."""
         db = 10 * np.log10(np.maximum(psd.sum(axis=1), 1e-30))
         floor = ndimage.median_filter(db, size=FLOOR_BINS, mode="nearest")
-        idx, _ = signal.find_peaks(db, height=floor + MIN_OVER_FLOOR_DB, distance=3)
+        idx = local_peaks(db, floor + MIN_OVER_FLOOR_DB, distance=3)
         known = rpm_mean[np.isfinite(rpm_mean)]
         rpm_level = float(known.mean()) if known.size else np.nan
         out = []

@@ -213,3 +213,17 @@ def test_any_profile_loads_or_fails_in_one_line(mode, air):
         assert str(exc).startswith("f.toml: ") and "\n" not in str(exc)
     else:
         assert p.modes[0].freq_hz > 0 and 0 < p.modes[0].damping_ratio <= 0.5
+
+
+@given(st.integers(0, 2**32 - 1), st.integers(1, 6), st.floats(-3.0, 3.0))
+def test_local_peaks_equal_scipy_find_peaks(seed, distance, offset):
+    # reference: scipy.signal.find_peaks(x, height=h, distance=d) on data without flat tops
+    from scipy.signal import find_peaks
+
+    from monitor.stray import local_peaks
+
+    rng = np.random.default_rng(seed)
+    x = np.cumsum(rng.normal(size=300)) + rng.normal(size=300) * 2.0  # many peaks, no ties
+    h = np.convolve(x, np.ones(15) / 15, mode="same") + offset
+    ref, _ = find_peaks(x, height=h, distance=distance)
+    assert local_peaks(x, h, distance).tolist() == ref.tolist()
