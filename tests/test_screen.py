@@ -47,12 +47,13 @@ class FedRun(LiveRun):
         mt = t[::16]
         mu = MotorUpdate(mt, np.stack([rpm, rpm], 1), np.full((mt.size, 2), 0.3), np.ones((mt.size, 2), bool))
         self.events.extend(self.engine.feed([mu, Samples(0, self.index, self.t, FS, x)]))
+        self.events.extend(self.engine.flush())
         self.t += seconds
         self.index += n
 
 
 def text(app, wid):
-    return str(app.query_one(wid).render())
+    return app.query_one(wid).text
 
 
 @pytest.mark.parametrize("size", [(80, 24), (160, 48)])

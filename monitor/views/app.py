@@ -14,15 +14,29 @@ from textual.app import App, ComposeResult
 from textual.binding import Binding
 from textual.containers import Horizontal, Vertical
 from textual.screen import ModalScreen
-from textual.widgets import RichLog, Static
+from textual.widgets import Static
 
 from ..crossing import CrossingEvent
 from ..live import LiveRun
 from ..orders import ORDER_NAMES, order_multipliers
-from .widgets import AXES, SpectrumView, WaterfallView
+from .widgets import (
+    AXES,
+    BASE,
+    CAUTION_STYLE,
+    STATE_STYLES,
+    STATUS_STYLE,
+    STRAY_STYLE,
+    TITLE_STYLE,
+    EventLog,
+    SpectrumView,
+    TextPanel,
+    WaterfallView,
+)
 
 CAUTION = ("CAUTION  props off or frame clamped | eye protection | clear of the prop arc | "
            "current-limited supply | kill switch in reach")
+#: the same cautions for a narrow terminal (80 columns)
+CAUTION_SHORT = "CAUTION props off/clamped | eyes | clear of arc | current limit | kill switch"
 #: the waterfall repaints at 4 Hz (the spectra at the screen rate): a 160x48 heat map costs the
 #: terminal far more escape codes than the spectra do
 WATERFALL_PERIOD_S = 0.25
@@ -48,6 +62,14 @@ HELP = """spinrig live screen keys
 press any key to close"""
 
 
+def _event_line(e: CrossingEvent) -> str:
+    """A crossing event in the side column's width: what, which motor and order, which mode."""
+    name = e.order_name
+    order = "2bp" if name.startswith("2x blade") else "bp" if name.startswith("blade") else name
+    word = {"crossing": "CROSS", "nearing": "NEAR", "clear": "clear"}[e.state]
+    return f"{e.t_s:6.1f} {word:5s} {e.mode} M{e.motor} {order} {e.order_hz:.0f} Hz ({e.mode_hz:.0f}) {e.rpm:.0f} rpm"
+
+
 class HelpScreen(ModalScreen):
     DEFAULT_CSS = """
     HelpScreen { align: center middle; }
@@ -65,17 +87,17 @@ class HelpScreen(ModalScreen):
 class SpinrigApp(App):
     CSS = """
     Screen { background: #0d1117; }
-    #caution { height: 1; background: #5a3a00; color: #ffd27a; }
+    #caution { height: 1; background: #5a3a00; }
     #main { height: 1fr; }
     #left { width: 2fr; }
     #right { width: 1fr; min-width: 28; }
-    #spec_title, #wf_title { height: 1; color: #8b93a1; }
+    #spec_title, #wf_title { height: 1; }
     #spectrum { height: 1fr; min-height: 8; }
     #waterfall { height: 1fr; min-height: 5; }
     #motors { height: auto; max-height: 10; border-top: solid #30363d; }
     #modes { height: auto; max-height: 16; border-top: solid #30363d; }
     #events { height: 1fr; border-top: solid #30363d; }
-    #status { height: 1; background: #161b22; color: #c8cdd8; }
+    #status { height: 1; background: #161b22; }
     """
     BINDINGS = [
         Binding("q", "quit_run", "quit"),
@@ -111,23 +133,22 @@ class SpinrigApp(App):
         self._events_seen = 0
         self._last_frames = -1
         self.messages: list[str] = []
-        self._texts: dict[str, str] = {}
         self._last_wf = 0.0
         self._last_panels = 0.0
 
     def compose(self) -> ComposeResult:
-        yield Static(CAUTION, id="caution")
+        yield TextPanel([self._caution_text()], CAUTION_STYLE, auto_height=False, id="caution")
         with Horizontal(id="main"):
             with Vertical(id="left"):
-                yield Static("spectrum", id="spec_title")
+                yield TextPanel(["spectrum"], TITLE_STYLE, auto_height=False, id="spec_title")
                 yield SpectrumView(id="spectrum")
-                yield Static("waterfall (newest at the top)", id="wf_title")
+                yield TextPanel(["waterfall (newest at the top)"], TITLE_STYLE, auto_height=False, id="wf_title")
                 yield WaterfallView(id="waterfall")
             with Vertical(id="right"):
-                yield Static("motors", id="motors")
-                yield Static("modes", id="modes")
-                yield RichLog(id="events", max_lines=400, wrap=False, markup=False)
-        yield Static("", id="status")
+                yield TextPanel(["motors"], id="motors")
+                yield TextPanel(["modes"], id="modes")
+                yield EventLog(id="events")
+        yield TextPanel([""], STATUS_STYLE, auto_height=False, id="status")
 
     def on_mount(self) -> None:
         if self._start:
@@ -141,9 +162,15 @@ class SpinrigApp(App):
 
     # ---------------------------------------------------------------- drawing
 
+    def _caution_text(self) -> str:
+        return CAUTION if self.size.width == 0 or self.size.width >= len(CAUTION) else CAUTION_SHORT
+
+    def on_resize(self, event) -> None:
+        self.query_one("#caution", TextPanel).set_lines([self._caution_text()])
+
     def note(self, text: str) -> None:
         self.messages.append(text)
-        self.query_one("#events", RichLog).write(f"{self.clock()} {text}")
+        self.query_one("#events", EventLog).write(f"{self.clock()} {text}")
 
     def tick(self) -> None:
         run = self.live
@@ -166,20 +193,23 @@ class SpinrigApp(App):
             self._panels(snap)
 
     def _events(self) -> None:
-        log = self.query_one("#events", RichLog)
+        log = self.query_one("#events", EventLog)
         evs = list(self.live.events)
         new = evs[self._events_seen - len(evs):] if self._events_seen > len(evs) else evs[self._events_seen:]
         self._events_seen = len(evs) if len(evs) < self.live.events.maxlen else self._events_seen
         for e in new[-50:]:
-            log.write(e.text() if not isinstance(e, CrossingEvent) else e.text().replace("  ", " "))
+            if isinstance(e, CrossingEvent):
+                log.write(_event_line(e), STATE_STYLES.get(e.state, BASE))
+            else:
+                log.write(e.text(), STRAY_STYLE if getattr(e, "freq_hz", None) is not None else BASE)
         if len(evs) >= self.live.events.maxlen:
             self.live.events.clear()
             self._events_seen = 0
 
-    def _set(self, wid: str, text: str) -> None:
-        if self._texts.get(wid) != text:
-            self._texts[wid] = text
-            self.query_one(wid, Static).update(text)
+    def _set(self, wid: str, text) -> None:
+        """New lines for a panel (a string, or a list of lines); unchanged text costs nothing."""
+        lines = text.split("\n") if isinstance(text, str) else text
+        self.query_one(wid, TextPanel).set_lines(lines)
 
     def _panels(self, snap) -> None:
         spec = self.query_one(SpectrumView)
@@ -198,11 +228,13 @@ class SpinrigApp(App):
             thr = snap.throttle[m] * 100 if snap.throttle.size and np.isfinite(snap.throttle[m]) else float("nan")
             lines.append(f" M{m + 1} {rpm:6.0f} rpm {thr:4.0f}% 1x {f1:5.1f} Hz {tel}")
         self._set("#motors", "\n".join(lines))
-        mlines = ["modes"]
+        mlines: list = ["modes"]
         modes = {m.name: m for m in self.live.profile.modes}
         mult = order_multipliers(self.live.profile.blades)
         for st in snap.mode_states:
-            mlines.append(f" {STATE_MARK[st['state']]:8s} {st['freq_hz']:6.1f} Hz {st['mode'][:18]}")
+            mark = STATE_MARK[st["state"]]
+            mlines.append([(" ", BASE), (f"{mark:8s}", STATE_STYLES[st["state"]]),
+                           (f" {st['freq_hz']:6.1f} Hz {st['mode'][:18]}", BASE)])
             mode = modes.get(st["mode"])
             if mode is not None and snap.order_hz.size and np.any(np.isfinite(snap.order_hz)):
                 d = np.abs(np.nan_to_num(snap.order_hz, nan=1e9) - mode.freq_hz)
@@ -214,7 +246,7 @@ class SpinrigApp(App):
             mlines.append(" no profile: stray peaks only")
         for b in snap.bands[:4]:
             mlines.append(f"  band {b['mode_hz']:.0f} Hz {b['order_name'][:10]} {b['rpm_low']:.0f}-{b['rpm_high']:.0f}")
-        self._set("#modes", "\n".join(mlines))
+        self._set("#modes", mlines)
         s = self.live.status()
         cap = f" | capture {s.capture} {s.capture_bytes / 1e6:.1f} MB" if s.capture else ""
         link = "" if s.connected else " | LINK DOWN"

@@ -27,6 +27,16 @@ GAP_STYLE = Style(color="#ff5555", bgcolor="#0d1117")
 MARK_STYLES = [DIM] + [Style(color=c, bgcolor="#0d1117", bold=True) for c in MOTOR_COLOURS]
 BG_KINDS = ("#0d1117", "#1c2a1c", CURSOR_BG)  # plain, inside a mode's half-power band, cursor
 BAR_STYLES = [[Style(color=c, bgcolor=bg) for bg in BG_KINDS] for c in AXIS_COLOURS]
+#: crossing-watch states: words and symbols carry the meaning, colour repeats it
+STATE_STYLES = {
+    "clear": Style(color="#7ee081", bgcolor="#0d1117"),
+    "nearing": Style(color="#ffd166", bgcolor="#0d1117", bold=True),
+    "crossing": Style(color="#ffffff", bgcolor="#8b1e2d", bold=True),
+}
+STRAY_STYLE = Style(color="#c3a6ff", bgcolor="#0d1117")
+CAUTION_STYLE = Style(color="#ffd27a", bgcolor="#5a3a00")
+STATUS_STYLE = Style(color="#c8cdd8", bgcolor="#161b22")
+TITLE_STYLE = Style(color="#8b93a1", bgcolor="#0d1117")
 
 
 _EIGHTHS_ARR = np.array(list(EIGHTHS))
@@ -184,7 +194,7 @@ class WaterfallView(Widget):
 
     def __init__(self, **kw):
         super().__init__(**kw)
-        self.rows: deque = deque(maxlen=200)  # (level index per column, gap flag)
+        self.rows: deque = deque(maxlen=200)  # (level index per column, gap flag, frame end time s)
         self.total = 0  # rows ever added (absolute index of the next row)
         self.axes_shown = [True, True, True]
         self.fmax_hz = 1000.0
@@ -212,7 +222,7 @@ class WaterfallView(Widget):
             self.top_db = top
             self._pairs.clear()
         for i in range(cols.shape[0]):
-            self.rows.append((level_index(cols[i], self.top_db, self.span_db), bool(marks[i, 1])))
+            self.rows.append((level_index(cols[i], self.top_db, self.span_db), bool(marks[i, 1]), float(marks[i, 0])))
             self._pairs.pop(self.total // 2, None)
             self.total += 1
         for k in [k for k in self._pairs if k < (self.total - len(self.rows)) // 2]:
@@ -231,9 +241,9 @@ class WaterfallView(Widget):
         i_new, i_old = 2 * pair + 1 - first, 2 * pair - first  # upper half newer, lower half older
         if i_old < 0 and i_new < 0:
             return Strip([Segment(" " * w, BASE)], w)
-        empty = (np.zeros(pw, int), False)
-        top, gap_t = self.rows[i_new] if 0 <= i_new < len(self.rows) else empty
-        bot, gap_b = self.rows[i_old] if 0 <= i_old < len(self.rows) else empty
+        empty = (np.zeros(pw, int), False, 0.0)
+        top, gap_t, _ = self.rows[i_new] if 0 <= i_new < len(self.rows) else empty
+        bot, gap_b, _ = self.rows[i_old] if 0 <= i_old < len(self.rows) else empty
         segs = []
         run, st = [], None
         gap = gap_t or gap_b
@@ -256,7 +266,11 @@ class WaterfallView(Widget):
             return self._legend(w)
         newest_pair = (self.total - 1) // 2
         pair = newest_pair - y
-        label = "  now " if y == 0 else ("      " if y % 4 else f"{-2 * y:5d} ")
+        label = "  now " if y == 0 else "      "
+        if y and y % 4 == 0 and self.rows:  # seconds before the newest spectrum, every fourth row
+            i = 2 * pair - (self.total - len(self.rows))
+            if 0 <= i < len(self.rows):
+                label = f"{self.rows[i][2] - self.rows[-1][2]:5.1f}s"
         if pair < 0 or self.total == 0:
             return Strip([Segment(label[: self.LABEL_W], DIM), Segment(" " * max(0, w - self.LABEL_W), BASE)], w)
         body = self._pairs.get(pair)
@@ -270,4 +284,90 @@ class WaterfallView(Widget):
         for st in HEAT_STYLES:
             segs.append(Segment("█", st))
         segs.append(Segment(f" {self.top_db:.0f} dB re (deg/s)^2/Hz   -- gap", DIM))
-        return Strip(segs, w).crop(0, w)
+        return Strip(segs).crop_extend(0, w, BASE)  # exactly w cells, or the next widget shifts left
+
+
+Line = str | list[tuple[str, Style]]
+
+
+class TextPanel(Widget):
+    """Lines of text drawn with the line API. Setting the same text again costs nothing; new text
+    repaints the panel but never re-lays the screen out (its height changes only when its number
+    of lines does), unlike a ``Static`` whose every update re-lays out its container."""
+
+    DEFAULT_CSS = "TextPanel { height: 1; }"
+
+    def __init__(self, lines: list[Line] | None = None, style: Style = BASE, auto_height: bool = True, **kw):
+        super().__init__(**kw)
+        self.base_style = style
+        self.auto_height = auto_height
+        self._lines: list[Line] = []
+        self._strips: dict[int, Strip] = {}
+        if lines:
+            self.set_lines(lines)
+
+    @property
+    def text(self) -> str:
+        """The panel's text (for tests and logs)."""
+        return "\n".join(x if isinstance(x, str) else "".join(t for t, _ in x) for x in self._lines)
+
+    def set_lines(self, lines: list[Line]) -> None:
+        if lines == self._lines:
+            return
+        grew = len(lines) != len(self._lines)
+        self._lines = list(lines)
+        self._strips.clear()
+        if grew and self.auto_height:
+            self.styles.height = max(1, len(lines)) + self.styles.gutter.height  # the only case needing a layout
+        self.refresh()
+
+    def render_line(self, y: int) -> Strip:
+        w = self.size.width
+        hit = self._strips.get(y)
+        if hit is not None and hit.cell_length == w:
+            return hit
+        if y >= len(self._lines):
+            strip = Strip([Segment(" " * w, self.base_style)], w)
+        else:
+            line = self._lines[y]
+            segs = [Segment(line, self.base_style)] if isinstance(line, str) else [Segment(t, s) for t, s in line]
+            strip = Strip(segs).crop_extend(0, w, self.base_style)
+        self._strips[y] = strip
+        return strip
+
+
+class EventLog(Widget):
+    """The newest events, newest at the bottom; a bounded deque, drawn with the line API."""
+
+    DEFAULT_CSS = "EventLog { height: 1fr; }"
+
+    def __init__(self, capacity: int = 200, **kw):
+        super().__init__(**kw)
+        self.lines: deque[tuple[str, Style]] = deque(maxlen=capacity)
+        self._strips: dict[tuple[int, int], Strip] = {}
+        self.total = 0  # lines ever written (absolute index of the next one)
+
+    @property
+    def text(self) -> str:
+        return "\n".join(t for t, _ in self.lines)
+
+    def write(self, text: str, style: Style = BASE) -> None:
+        for part in text.splitlines() or [""]:
+            self.lines.append((part, style))
+            self.total += 1
+        if len(self._strips) > 4 * self.lines.maxlen:
+            self._strips.clear()
+        self.refresh()
+
+    def render_line(self, y: int) -> Strip:
+        w, h = self.size.width, self.size.height
+        i = len(self.lines) - h + y  # the last h lines fill the panel, oldest first
+        if i < 0:
+            return Strip([Segment(" " * w, BASE)], w)
+        key = (self.total - len(self.lines) + i, w)
+        hit = self._strips.get(key)
+        if hit is None:
+            line, style = self.lines[i]
+            hit = Strip([Segment(line[:w].ljust(w), style)], w)
+            self._strips[key] = hit
+        return hit
