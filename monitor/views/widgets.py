@@ -9,6 +9,7 @@ from collections import deque
 import numpy as np
 from rich.segment import Segment
 from rich.style import Style
+from textual.geometry import Region
 from textual.strip import Strip
 from textual.widget import Widget
 
@@ -80,8 +81,18 @@ class SpectrumView(Widget):
     def update_snapshot(self, snap, modes) -> None:
         self.snapshot = snap
         self.profile_modes = modes
+        old = self._lines
         self._build()
-        self.refresh()
+        new = self._lines
+        if len(old) != len(new) or not new:
+            self.refresh()
+            return
+        w = self.size.width
+        changed = [y for y, (a, b) in enumerate(zip(old, new, strict=True)) if a != b]
+        if len(changed) > 0.8 * len(new):
+            self.refresh()
+        elif changed:  # repaint only the lines that differ: fewer escape codes for the terminal
+            self.refresh(*[Region(0, y, w, 1) for y in changed])
 
     def cursor_frequency(self) -> float | None:
         s = self.snapshot
@@ -136,21 +147,24 @@ class SpectrumView(Widget):
         lines.append(Strip(segs, w))
         plot_rows = max(1, h - 2)
         per_axis = max(1, plot_rows // len(shown))
+        rows_up = np.arange(per_axis - 1, -1, -1)[:, None]  # (per_axis, 1) rows above the bottom
         for a, ax in enumerate(shown):
             frac = np.clip((levels[a] - bottom) / self.span_db, 0, 1) * per_axis  # bar height in rows
             styles = BAR_STYLES[ax]
             bgk = np.where(band_cols, 1, 0)
             bgk[cur] = 2
             runs = _runs(bgk)
+            # every row of the axis at once: eighths filled per cell, then each row viewed as one string
+            fill = np.clip(frac[None, :] - rows_up, 0, 1)
+            cells = np.ascontiguousarray(_EIGHTHS_ARR[np.rint(fill * 8).astype(np.intp)])
+            row_text = cells.view(f"<U{pw}").ravel().tolist()
             for r in range(per_axis):
-                row_from_bottom = per_axis - 1 - r
-                fill = np.clip(frac - row_from_bottom, 0, 1)
-                chars = "".join(_EIGHTHS_ARR[np.round(fill * 8).astype(int)])
+                chars = row_text[r]
                 label = ""
                 if r == 0:
                     label = f"{AXES[ax][:4]:>5} "
                 elif r == per_axis - 1:
-                    label = f"{bottom + self.span_db * (per_axis - 1 - r) / per_axis:5.0f} "
+                    label = f"{bottom:5.0f} "
                 elif r == 1:
                     label = f"{top + 0.0:5.0f} "
                 segs = [Segment(label.ljust(self.LABEL_W)[: self.LABEL_W], DIM)]
