@@ -148,6 +148,15 @@ class SpectrumView(Widget):
         plot_rows = max(1, h - 2)
         per_axis = max(1, plot_rows // len(shown))
         rows_up = np.arange(per_axis - 1, -1, -1)[:, None]  # (per_axis, 1) rows above the bottom
+        # level ticks every 20 dB (10 dB when an axis has room): the row holding each tick level
+        step_db = 10.0 if per_axis >= 12 else 20.0
+        ticks_db = {}
+        for lv in np.arange(top, bottom - 1e-9, -step_db):
+            r = min(per_axis - 1, int((top - lv) / self.span_db * per_axis))
+            if r > 0 and r not in ticks_db:
+                ticks_db[r] = f"{lv:5.0f} "
+        if per_axis > 1:
+            ticks_db.setdefault(per_axis - 1, f"{bottom:5.0f} ")
         for a, ax in enumerate(shown):
             frac = np.clip((levels[a] - bottom) / self.span_db, 0, 1) * per_axis  # bar height in rows
             styles = BAR_STYLES[ax]
@@ -160,13 +169,7 @@ class SpectrumView(Widget):
             row_text = cells.view(f"<U{pw}").ravel().tolist()
             for r in range(per_axis):
                 chars = row_text[r]
-                label = ""
-                if r == 0:
-                    label = f"{AXES[ax][:4]:>5} "
-                elif r == per_axis - 1:
-                    label = f"{bottom:5.0f} "
-                elif r == 1:
-                    label = f"{top + 0.0:5.0f} "
+                label = f"{AXES[ax][:4]:>5} " if r == 0 else ticks_db.get(r, "")
                 segs = [Segment(label.ljust(self.LABEL_W)[: self.LABEL_W], DIM)]
                 segs += [Segment(chars[a:b], styles[k]) for a, b, k in runs]
                 lines.append(Strip(segs, w))
