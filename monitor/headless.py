@@ -211,8 +211,7 @@ def run_watch(args) -> int:
     finally:
         signal.signal(signal.SIGTERM, old)
         link.close()
-        for ev in iter(lambda: session.pump(timeout=0.0) or None, None):
-            printer(ev)
+        printer(session.drain())
         printer.close()
         health = asdict(link.health)
         if link.capture is not None:

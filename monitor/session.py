@@ -58,6 +58,15 @@ class Session:
         self.counters.pumps += 1
         return events
 
+    def drain(self) -> list:
+        """After the link stopped: process every entry still queued, then finish the waiting frames."""
+        events = []
+        if self.link is not None:
+            while not self.link.queue.empty():
+                events.extend(self.pump(timeout=0.0))
+        events.extend(self.engine.flush())
+        return events
+
     def _entry(self, entry) -> list:
         if isinstance(entry, LinkMessage):
             t = self.assembler._last_sample_s

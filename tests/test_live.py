@@ -351,3 +351,25 @@ def test_an_idle_link_finishes_the_waiting_frames():
     session.pump(timeout=0.0)  # the queued entry
     session.pump(timeout=0.0)  # nothing: idle
     assert eng.detected == eng.frames
+
+
+def test_drain_after_the_link_stops_processes_every_entry_and_finishes_the_frames():
+    # what headless watch does when it stops: nothing queued may be left, no frame left undetected
+    _, _, _, items = _pipeline([], 2.0)
+
+    class Stopped:
+        def __init__(self):
+            import queue
+
+            self.queue = queue.Queue()
+
+    link = Stopped()
+    eng = Engine(EngineConfig(detect_every_s=10.0), load_profile(PROFILE))
+    session = Session(eng, link)
+    eng.feed(items[:1])  # the device description
+    for _ in range(300):  # more entries than one pump takes, and none of them causes an event
+        link.queue.put((0.0, []))
+    session.assembler.feed = lambda raw, host_s: items[1:] if raw == ["last"] else []
+    link.queue.put((0.0, ["last"]))
+    session.drain()
+    assert link.queue.empty() and eng.frames > 0 and eng.detected == eng.frames

@@ -199,3 +199,22 @@ def test_main_screen_snapshot(snap_compare, size):
         await pilot.pause(0.3)
 
     assert snap_compare(_fixed_app(), terminal_size=size, run_before=settle)
+
+
+def test_event_log_groups_the_motors_of_one_crossing_on_one_line():
+    async def go():
+        run = FedRun()
+        app = SpinrigApp(run, start=False)
+        async with app.run_test(size=(160, 48)) as pilot:
+            for _ in range(30):  # both motors sweep 1x through the 150 Hz mode together
+                run.feed(0.1, lambda t: 6000.0 + 1500.0 * t)
+                await pilot.pause(0.05)
+            log = app.query_one("#events").text
+            await pilot.press("q")
+        crossings = [e for e in run.events if getattr(e, "state", None) == "crossing"]
+        assert {e.motor for e in crossings} == {1, 2}
+        lines = [x for x in log.splitlines() if "CROSS" in x]
+        assert lines and all("M1,2 1x" in x and "arm flap" in x for x in lines)
+        assert len(lines) == len({(e.t_s, e.mode, e.order) for e in crossings})
+
+    asyncio.run(go())

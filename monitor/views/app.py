@@ -62,12 +62,30 @@ HELP = """spinrig live screen keys
 press any key to close"""
 
 
-def _event_line(e: CrossingEvent) -> str:
-    """A crossing event in the side column's width: what, which motor and order, which mode."""
+def _event_line(group: list[CrossingEvent]) -> str:
+    """Crossing events of one frame, state, mode and order (one per motor) as one line in the side
+    column's width: what, which mode, which motors and order, where."""
+    e = group[0]
     name = e.order_name
     order = "2bp" if name.startswith("2x blade") else "bp" if name.startswith("blade") else name
     word = {"crossing": "CROSS", "nearing": "NEAR", "clear": "clear"}[e.state]
-    return f"{e.t_s:6.1f} {word:5s} {e.mode} M{e.motor} {order} {e.order_hz:.0f} Hz ({e.mode_hz:.0f}) {e.rpm:.0f} rpm"
+    motors = "M" + ",".join(str(x.motor) for x in group)
+    hz = sum(x.order_hz for x in group) / len(group)
+    rpm = sum(x.rpm for x in group) / len(group)
+    return f"{e.t_s:6.1f} {word:5s} {e.mode} {motors} {order} {hz:.0f} Hz ({e.mode_hz:.0f}) {rpm:.0f} rpm"
+
+
+def _grouped(events: list) -> list[list]:
+    """Consecutive crossing events of the same frame, state, mode and order, grouped."""
+    out: list[list] = []
+    for e in events:
+        if (isinstance(e, CrossingEvent) and out and isinstance(out[-1][0], CrossingEvent)
+                and (out[-1][0].t_s, out[-1][0].state, out[-1][0].mode, out[-1][0].order)
+                == (e.t_s, e.state, e.mode, e.order)):
+            out[-1].append(e)
+        else:
+            out.append([e])
+    return out
 
 
 class HelpScreen(ModalScreen):
@@ -197,9 +215,10 @@ class SpinrigApp(App):
         evs = list(self.live.events)
         new = evs[self._events_seen - len(evs):] if self._events_seen > len(evs) else evs[self._events_seen:]
         self._events_seen = len(evs) if len(evs) < self.live.events.maxlen else self._events_seen
-        for e in new[-50:]:
+        for group in _grouped(new[-200:])[-50:]:
+            e = group[0]
             if isinstance(e, CrossingEvent):
-                log.write(_event_line(e), STATE_STYLES.get(e.state, BASE))
+                log.write(_event_line(group), STATE_STYLES.get(e.state, BASE))
             else:
                 log.write(e.text(), STRAY_STYLE if getattr(e, "freq_hz", None) is not None else BASE)
         if len(evs) >= self.live.events.maxlen:
