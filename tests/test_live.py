@@ -125,7 +125,11 @@ def test_replay_gives_the_live_events(tmp_path):
     a = live.read_text().splitlines()
     b = again.read_text().splitlines()
     crossings = [x for x in a if '"crossing"' in x]
-    assert len(crossings) > 10 and a == b
+    # on a mismatch, say where it starts and what each side processed (link health, frames, samples)
+    first = next((i for i, (x, y) in enumerate(zip(a, b, strict=False)) if x != y), min(len(a), len(b)))
+    why = (f"events differ from #{first} of {len(a)} live / {len(b)} replayed; live summary "
+           f"{proc.stdout.splitlines()[-12:]}; replay summary {proc2.stdout.splitlines()[-1][:600]}")
+    assert len(crossings) > 10 and a == b, why
     assert json.loads(proc2.stdout.splitlines()[-1])["kind"] == "summary"
 
 
