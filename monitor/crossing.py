@@ -225,11 +225,30 @@ class CrossingWatch:
         cond = approach.view(np.uint8) | (hit.view(np.uint8) << 1)
         cond |= gone.view(np.uint8) << 2
         cond |= left.view(np.uint8) << 3
-        finite = np.isfinite(rpm_latest).all(axis=1).tolist()
-        rising = (approach | hit).reshape(cond.shape[0], -1).any(axis=1).tolist()  # any approach or hit
-        for i in range(len(t_s)):
-            if not finite[i] or (self._quiet and not rising[i]):
-                continue  # from all-clear, nothing but an approach or a hit can change a state
+        fin = np.isfinite(rpm_latest).all(axis=1)
+        rising = (approach | hit).reshape(cond.shape[0], -1).any(axis=1)  # any approach or hit
+        nf = len(t_s)
+        i = 0
+        while i < nf:
+            if not self._runs_any:
+                # the frames from i on in which no state would move with the states held skip as a
+                # block (from all-clear only an approach or a hit can move one): bands extend over them
+                if self._quiet:
+                    moving = rising[i:] & fin[i:]
+                else:
+                    moving = (_TRANSITIONS[self.state, cond[i:]] != self.state).reshape(nf - i, -1).any(axis=1)
+                    moving &= fin[i:]
+                j = i + int(np.argmax(moving)) if moving.any() else nf
+                if j > i:
+                    if self._any_open:
+                        keep = fin[i:j]
+                        self._extend_bands(rpm_latest[i:j][keep], lv_seq[i:j][keep])
+                    i = j
+                    if i >= nf:
+                        break
+            if not fin[i]:
+                i += 1
+                continue
             s = self.state
             new = _TRANSITIONS[s, cond[i]]
             # rises need PERSIST_FRAMES consecutive proposals (a spin-up flashing past is no crossing)
@@ -254,14 +273,10 @@ class CrossingWatch:
                         )
                     )
                 self.state = new
-                self._quiet = not (self._runs_any or self._any_state)
-            else:
-                self._quiet = not (self._runs_any or self._any_state)
+            self._quiet = not (self._runs_any or self._any_state)
             if self._any_open:  # extend the open bands (channels in the crossing state) by this frame
-                crossing = self._b_open
-                np.minimum(self._b_lo, rpm_latest[i][None, :, None], out=self._b_lo, where=crossing)
-                np.maximum(self._b_hi, rpm_latest[i][None, :, None], out=self._b_hi, where=crossing)
-                np.maximum(self._b_peak, lv_seq[i][:, None, None], out=self._b_peak, where=crossing)
+                self._extend_bands(rpm_latest[i : i + 1], lv_seq[i : i + 1])
+            i += 1
         return events
 
     def _band(self, n: int, m: int, k: int) -> Band:
@@ -269,6 +284,20 @@ class CrossingWatch:
         mult = float(self.mult[k])
         return Band(mode.name, mode.freq_hz, mult, order_label(mult, self.profile.blades), int(m) + 1,
                     float(self._b_lo[n, m, k]), float(self._b_hi[n, m, k]), float(self._b_peak[n, m, k]))
+
+    def _extend_bands(self, rpm_rows: np.ndarray, level_rows: np.ndarray) -> None:
+        """Widen the open bands to the RPM (frames, motors) and levels (frames, modes) of some frames."""
+        if rpm_rows.shape[0] == 0:
+            return
+        crossing = self._b_open
+        if rpm_rows.shape[0] == 1:
+            r_lo = r_hi = rpm_rows[0]
+            lv = level_rows[0]
+        else:
+            r_lo, r_hi, lv = rpm_rows.min(axis=0), rpm_rows.max(axis=0), level_rows.max(axis=0)
+        np.minimum(self._b_lo, r_lo[None, :, None], out=self._b_lo, where=crossing)
+        np.maximum(self._b_hi, r_hi[None, :, None], out=self._b_hi, where=crossing)
+        np.maximum(self._b_peak, lv[:, None, None], out=self._b_peak, where=crossing)
 
     def _open_close_bands(self, new: np.ndarray) -> None:
         """After a state change: close the bands of channels that left the crossing state and open

@@ -81,6 +81,7 @@ class Engine:
         self._rpm_estimated = False
         self._last_sample_t = 0.0
         self._pending: list = []  #: frame batches waiting for the detectors
+        self._unfolded: list = []  #: frame batches not yet in the average, peak hold and waterfall
         self._carry: list = []  #: events of a flush outside feed(), handed out by the next call
         self.detected = 0  #: frames the detectors have seen
         self.crossing: CrossingWatch | None = None
@@ -216,48 +217,64 @@ class Engine:
             self._frames(fb, new)
 
     def _frames(self, fb, new: list) -> None:
-        """A batch of new frames: spectra, averages, peak hold and waterfall now; detectors later."""
+        """A batch of new frames: the newest spectrum now; averages, peak hold, waterfall and
+        detectors over batches (whoever reads them first folds the waiting frames in)."""
         spec = self.spec
-        fs = spec.fs_hz
-        t0 = self._seg_t0 + fb.start * (1.0 / fs)
-        t1 = t0 + spec.nperseg / fs
-        f = t0.shape[0]
+        t0 = self._seg_t0 + fb.start * (1.0 / spec.fs_hz)
+        t1 = t0 + spec.nperseg / spec.fs_hz
         psd = fb.psd
-        # averaged spectrum and peak hold
-        alpha = self._ema_alpha
-        gap_first = self._gap_pending
-        if self.ema is None or gap_first:  # the average restarts after a gap, the peak hold does not
-            self.ema = psd[0].copy()
-            psd_rest = psd[1:]
-        else:
-            psd_rest = psd
-        nr = psd_rest.shape[0]
-        if nr == 1:
-            self.ema += alpha * (psd_rest[0] - self.ema)
-        elif nr > 1:  # e_k = (1 - a) e_(k-1) + a p_k unrolled: (1 - a)^F e_0 + sum_j a (1 - a)^(F-1-j) p_j
-            decay = (1.0 - alpha) ** np.arange(nr - 1, -1, -1)
-            self.ema = (1.0 - alpha) ** nr * self.ema + np.tensordot(alpha * decay, psd_rest, axes=1)
-        top = psd[0] if f == 1 else psd.max(axis=0)
-        if self.peak is None:
-            self.peak = top.copy()
-        else:
-            np.maximum(self.peak, top, out=self.peak)
-        self.waterfall.append(psd)  # stored as float32
-        marks = np.zeros((f, 2))
-        marks[:, 0] = t1
-        marks[0, 1] = 1.0 if gap_first else 0.0
-        self.waterfall_t.append(marks)
+        self._unfolded.append((psd, t1, self._gap_pending))
         self._gap_pending = False
         self._pending.append((t0, t1, psd, fb.amp_factor, self.frames))
-        self.frames += f
+        self.frames += t0.shape[0]
         self.last_psd = psd[-1]
         self._amp_factor = fb.amp_factor  # amplitude of the newest frame is derived when a view asks
         self._last_t = float(t1[-1])
         if self.config.detect_every_s <= 0:
             self._detect(new)
 
+    def _fold(self) -> None:
+        """Averaged spectrum, peak hold and waterfall over the frames not yet folded in, per batch
+        of frames since the last gap (the average restarts after a gap, the peak hold does not)."""
+        if not self._unfolded:
+            return
+        batches, self._unfolded = self._unfolded, []
+        runs: list[list] = []
+        for b in batches:
+            if b[2] or not runs:
+                runs.append([b])
+            else:
+                runs[-1].append(b)
+        alpha = self._ema_alpha
+        for run in runs:
+            psd = run[0][0] if len(run) == 1 else np.concatenate([b[0] for b in run])
+            t1 = run[0][1] if len(run) == 1 else np.concatenate([b[1] for b in run])
+            gap_first = run[0][2]
+            if self.ema is None or gap_first:
+                self.ema = psd[0].copy()
+                psd_rest = psd[1:]
+            else:
+                psd_rest = psd
+            nr = psd_rest.shape[0]
+            if nr == 1:
+                self.ema += alpha * (psd_rest[0] - self.ema)
+            elif nr > 1:  # e_k = (1 - a) e_(k-1) + a p_k unrolled: (1 - a)^F e_0 + sum_j a (1 - a)^(F-1-j) p_j
+                w = alpha * (1.0 - alpha) ** np.arange(nr - 1, -1, -1)
+                self.ema = (1.0 - alpha) ** nr * self.ema + np.dot(w, psd_rest.reshape(nr, -1)).reshape(self.ema.shape)
+            top = psd[0] if psd.shape[0] == 1 else psd.max(axis=0)
+            if self.peak is None:
+                self.peak = top.copy()
+            else:
+                np.maximum(self.peak, top, out=self.peak)
+            self.waterfall.append(psd)  # stored as float32
+            marks = np.zeros((psd.shape[0], 2))
+            marks[:, 0] = t1
+            marks[0, 1] = 1.0 if gap_first else 0.0
+            self.waterfall_t.append(marks)
+
     def _detect(self, new: list) -> None:
         """The detectors over the waiting frames, in one batch: motor windows, orders, crossings, stray peaks."""
+        self._fold()
         if not self._pending:
             return
         pend, self._pending = self._pending, []
@@ -307,10 +324,12 @@ class Engine:
 
     def clear_peak_hold(self) -> None:
         with self._lock:
+            self._fold()
             self.peak = None if self.last_psd is None else self.last_psd.copy()
 
     def snapshot(self) -> Snapshot:
         with self._lock:
+            self._fold()
             def cp(a):
                 return None if a is None else a.copy()
 
@@ -338,6 +357,7 @@ class Engine:
     def waterfall_rows(self, since_total: int) -> tuple[np.ndarray, np.ndarray]:
         """Waterfall rows written after ``since_total`` (at most the ring's capacity): (rows, times)."""
         with self._lock:
+            self._fold()
             if self.waterfall is None:
                 return np.zeros((0, 0, 3), np.float32), np.zeros((0, 2))
             n = self.waterfall.total - since_total

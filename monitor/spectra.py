@@ -129,8 +129,10 @@ class RollingSTFT:
         # removing a frame's mean after the FFT: X - mean * W, where W = rfft(window) is non-zero
         # in a few low bins only (two for Hann, five for flat-top)
         wf = np.fft.rfft(self.win)
-        self._detrend_bins = np.flatnonzero(np.abs(wf) > 1e-9 * np.abs(wf).max())
-        self._detrend_w = wf[self._detrend_bins]
+        nz = np.flatnonzero(np.abs(wf) > 1e-9 * np.abs(wf).max())
+        self._detrend_n = int(nz.max()) + 1  # the low bins 0 .. n-1 (two for Hann, five for flat-top)
+        self._detrend_w = wf[: self._detrend_n]
+        self._mean_w = np.full(config.nperseg, 1.0 / config.nperseg)
         self.segment = -1
         self.reset()
 
@@ -173,7 +175,7 @@ class RollingSTFT:
         cfg = self.config
         n_per = cfg.nperseg
         hop = cfg.hop
-        x = np.asarray(samples, dtype=np.float64).T
+        x = np.asarray(samples).T  # (C, n); cast to float64 as it is copied into the store
         self._append(x)
         self.samples += x.shape[1]
         end = self._buf_start + self._fill
@@ -187,10 +189,12 @@ class RollingSTFT:
         frames = np.ndarray((self.channels, count, n_per), dtype=st.dtype, buffer=st,
                             offset=(self._next - self._buf_start) * s1, strides=(s0, hop * s1, s1))
         spec = np.fft.rfft(frames * self.win, axis=2)  # (C, F, bins)
-        mean = np.add.reduce(frames, axis=2) * (1.0 / n_per)
-        spec[:, :, self._detrend_bins] -= mean[:, :, None] * self._detrend_w  # detrend='constant'
-
-        mag2 = spec.real**2 + spec.imag**2
-        psd = np.transpose(mag2, (1, 2, 0)) * self.psd_scale[None, :, None]  # (F, bins, C)
+        mean = frames @ self._mean_w  # (C, F)
+        spec[:, :, : self._detrend_n] -= mean[:, :, None] * self._detrend_w  # detrend='constant'
+        ri = spec.view(np.float64)  # (C, F, 2 bins): real and imaginary parts side by side
+        ri *= ri
+        mag2 = ri[:, :, 0::2] + ri[:, :, 1::2]
+        mag2 *= self.psd_scale
+        psd = np.transpose(mag2, (1, 2, 0))  # (F, bins, C), a view
         self._next = int(starts[-1] + hop)
         return FrameBatch(self.segment, starts, psd, self.amp_factor)
