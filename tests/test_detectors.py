@@ -227,3 +227,32 @@ def test_local_peaks_equal_scipy_find_peaks(seed, distance, offset):
     h = np.convolve(x, np.ones(15) / 15, mode="same") + offset
     ref, _ = find_peaks(x, height=h, distance=distance)
     assert local_peaks(x, h, distance).tolist() == ref.tolist()
+
+
+@given(st.integers(0, 2**32 - 1))
+def test_crossing_watch_in_batches_equals_frame_by_frame(seed):
+    # the watch skips runs of frames in which no state can move; fed in random batches (with
+    # frames of unknown RPM among them) it must give exactly the events and bands of one frame a call
+    rng = np.random.default_rng(seed)
+    profile = Profile("t", 2, "bungee", (Mode("arm", 150.0, 0.03), Mode("plate", 260.0, 0.05)))
+    freqs = np.arange(513) * 4.0
+    n = 240
+    t = np.arange(n) * 0.032
+    rpm = 6000.0 + 2500.0 * np.sin(t / 2.5)[:, None] + rng.normal(0, 30, (n, 2))
+    rpm[rng.random(n) < 0.05] = np.nan
+    mean = rpm + rng.normal(0, 20, (n, 2))
+    psd = rng.exponential(1e-4, (n, 513)) * (1 + 300 * np.exp(-((freqs - 150.0) / 6.0) ** 2))
+
+    def run(cuts):
+        w = CrossingWatch(profile, 2, freqs, 0.032)
+        ev, k = [], 0
+        for c in cuts:
+            ev += w.update(t[k : k + c], psd[k : k + c], rpm[k : k + c], mean[k : k + c])
+            k += c
+        return [e.as_dict() for e in ev], [b.as_dict() for b in w.all_bands()]
+
+    cuts = []
+    while sum(cuts) < n:
+        cuts.append(int(min(rng.integers(1, 12), n - sum(cuts))))
+    one = run([1] * n)
+    assert one[0] and run(cuts) == one
