@@ -247,6 +247,9 @@ class SpinrigApp(App):
             thr = snap.throttle[m] * 100 if snap.throttle.size and np.isfinite(snap.throttle[m]) else float("nan")
             lines.append(f" M{m + 1} {rpm:6.0f} rpm {thr:4.0f}% 1x {f1:5.1f} Hz {tel}")
         self._set("#motors", "\n".join(lines))
+        # on a short terminal (80x24) the nearest order and its band are shown for modes that are
+        # not clear only, and two bands, so the event log keeps some rows
+        compact = 0 < self.size.height < 32
         mlines: list = ["modes"]
         modes = {m.name: m for m in self.live.profile.modes}
         mult = order_multipliers(self.live.profile.blades)
@@ -255,15 +258,20 @@ class SpinrigApp(App):
             mlines.append([(" ", BASE), (f"{mark:8s}", STATE_STYLES[st["state"]]),
                            (f" {st['freq_hz']:6.1f} Hz {st['mode'][:18]}", BASE)])
             mode = modes.get(st["mode"])
+            if compact and st["state"] == "clear":
+                continue
             if mode is not None and snap.order_hz.size and np.any(np.isfinite(snap.order_hz)):
                 d = np.abs(np.nan_to_num(snap.order_hz, nan=1e9) - mode.freq_hz)
                 mi, k = np.unravel_index(int(np.argmin(d)), d.shape)
                 lo, hi = mode.rpm_band(float(mult[k]))
-                mlines.append(f"     nearest M{mi + 1} {ORDER_SHORT[k]} {snap.order_hz[mi, k]:5.0f} Hz,"
-                              f" band {lo:.0f}-{hi:.0f} rpm")
+                if compact:  # fits 28 columns: motor, order, its frequency, the RPM band on the mode
+                    mlines.append(f"   M{mi + 1} {ORDER_SHORT[k]} {snap.order_hz[mi, k]:4.0f}Hz {lo:.0f}-{hi:.0f}")
+                else:
+                    mlines.append(f"     nearest M{mi + 1} {ORDER_SHORT[k]} {snap.order_hz[mi, k]:5.0f} Hz,"
+                                  f" band {lo:.0f}-{hi:.0f} rpm")
         if not snap.mode_states:
             mlines.append(" no profile: stray peaks only")
-        for b in snap.bands[:4]:
+        for b in snap.bands[: 2 if compact else 4]:
             mlines.append(f"  band {b['mode_hz']:.0f} Hz {b['order_name'][:10]} {b['rpm_low']:.0f}-{b['rpm_high']:.0f}")
         self._set("#modes", mlines)
         s = self.live.status()

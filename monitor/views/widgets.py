@@ -155,7 +155,9 @@ class SpectrumView(Widget):
             r = min(per_axis - 1, int((top - lv) / self.span_db * per_axis))
             if r > 0 and r not in ticks_db:
                 ticks_db[r] = f"{lv:5.0f} "
-        if per_axis > 1:
+        if per_axis <= 3:  # too short for ticks: the bottom row says where the scale ends
+            ticks_db = {per_axis - 1: f"{bottom:5.0f} "} if per_axis > 1 else {}
+        else:
             ticks_db.setdefault(per_axis - 1, f"{bottom:5.0f} ")
         for a, ax in enumerate(shown):
             frac = np.clip((levels[a] - bottom) / self.span_db, 0, 1) * per_axis  # bar height in rows
