@@ -63,7 +63,7 @@ def decode_straightforward(data: bytes, chunk: int = 4096) -> np.ndarray:
 
 def decode_python_cobs_batched(data: bytes) -> np.ndarray:
     bodies = []
-    for p in data.split(b"\x00"):
+    for p in data.split(b"\x00")[:-1]:  # the last piece is an unterminated tail (or empty)
         if p:
             body = stuffing.decode_reference(p)
             if crc_hqx(body, 0xFFFF) == 0:
