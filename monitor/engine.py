@@ -309,9 +309,10 @@ class Engine:
         if self.crossing is not None and motors:
             new.extend(self.crossing.update(t1, psd_sum, latest, mean))
         if self.stray is not None:
-            every = self._stray_every
-            for i in range((-first) % every, f, every):  # frames whose index is a multiple of `every`
-                new.extend(self.stray.update(float(t1[i]), psd[i], mean[i] if motors else np.zeros(0)))
+            sel = np.arange((-first) % self._stray_every, f, self._stray_every)  # frame index a multiple
+            if sel.size:
+                rpm_sel = mean[sel] if motors else np.zeros((sel.size, 0))
+                new.extend(self.stray.update_many(t1[sel], psd[sel], rpm_sel))
         self.detected = first + f
         self.last_rpm = mean[-1]
         self.last_thr = thr[-1]

@@ -97,10 +97,10 @@ class CaptureReplay:
         self.session = Session(engine)
         self.speed = speed
 
-    #: decoded chunks are pooled until about this much stream (bytes at 8 kHz: ~0.5 s) before the
+    #: decoded chunks are pooled until about this much stream (bytes at 8 kHz: ~2 s) before the
     #: assembler and engine see them; results do not depend on it (nothing downstream depends on
     #: how the stream was cut), only the per-call overhead does
-    POOL_BYTES = 40_000
+    POOL_BYTES = 160_000
 
     def __iter__(self) -> Iterator[list]:
         import firmware_protocol as fp

@@ -86,10 +86,28 @@ class StrayPeakFinder:
             bad |= np.any(np.abs(f[:, None] - orders[None, :]) <= tol + 0.03 * orders[None, :], axis=1)
         return bad
 
+    def update_many(self, t_s: np.ndarray, psd: np.ndarray, rpm_mean: np.ndarray) -> list[StrayPeak]:
+        """Several frames in time order, as :meth:`update` one after another would see them, with
+        the levels in dB of all frames computed in one call.
+        ``psd`` (F, bins, 3), ``rpm_mean`` (F, motors)."""
+        if t_s.shape[0] == 0:
+            return []
+        db = 10 * np.log10(np.maximum(psd.sum(axis=2), 1e-30))
+        out = []
+        for i in range(t_s.shape[0]):
+            # row by row: scipy's 1-D median filter is about 17 times faster than its 2-D path
+            floor = ndimage.median_filter(db[i], size=FLOOR_BINS, mode="nearest")
+            out += self._search(float(t_s[i]), psd[i], db[i], floor, rpm_mean[i])
+        return out
+
     def update(self, t_s: float, psd: np.ndarray, rpm_mean: np.ndarray) -> list[StrayPeak]:
         """One frame: ``psd`` (bins, 3) in (deg/s)^2/Hz, ``rpm_mean`` (motors,). Returns new reports."""
         db = 10 * np.log10(np.maximum(psd.sum(axis=1), 1e-30))
         floor = ndimage.median_filter(db, size=FLOOR_BINS, mode="nearest")
+        return self._search(t_s, psd, db, floor, rpm_mean)
+
+    def _search(self, t_s: float, psd: np.ndarray, db: np.ndarray, floor: np.ndarray,
+                rpm_mean: np.ndarray) -> list[StrayPeak]:
         idx = local_peaks(db, floor + MIN_OVER_FLOOR_DB, distance=3)
         known = rpm_mean[np.isfinite(rpm_mean)]
         rpm_level = float(known.mean()) if known.size else np.nan

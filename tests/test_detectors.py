@@ -256,3 +256,21 @@ def test_crossing_watch_in_batches_equals_frame_by_frame(seed):
         cuts.append(int(min(rng.integers(1, 12), n - sum(cuts))))
     one = run([1] * n)
     assert one[0] and run(cuts) == one
+
+
+def test_stray_search_over_many_frames_equals_one_at_a_time():
+    # update_many computes the dB levels of all frames in one call
+    from monitor.stray import StrayPeakFinder
+
+    rng = np.random.default_rng(5)
+    freqs = np.arange(1025) * 3.90625
+    profile = Profile("t", 2, "bungee", (Mode("arm", 150.0, 0.03),))
+    t = np.arange(40) * 0.2
+    rpm = np.stack([6000.0 + 150.0 * t, 6010.0 + 150.0 * t], axis=1)
+    psd = rng.exponential(1e-4, (40, 1025, 3))
+    psd[:, 246, 1] += 0.05  # a still peak near 961 Hz while the motors speed up
+    one = StrayPeakFinder(profile, freqs)
+    a = [p.as_dict() for i in range(40) for p in one.update(float(t[i]), psd[i], rpm[i])]
+    many = StrayPeakFinder(profile, freqs)
+    b = [p.as_dict() for k in range(0, 40, 7) for p in many.update_many(t[k : k + 7], psd[k : k + 7], rpm[k : k + 7])]
+    assert a and a == b and abs(a[0]["freq_hz"] - 961.0) < 4.0
