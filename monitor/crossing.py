@@ -13,7 +13,8 @@ States (our own words): ``clear``, ``nearing``, ``crossing``.
 
 Every transition is an event with the time, motor, order, mode, RPM, order frequency, the level
 at the mode in dB (re 1 (deg/s)^2/Hz) and the predicted band 60 f (1 -+ zeta) / k in RPM.
-Vectorised over all channels; sequential only over frames.
+Vectorised over all channels and, for everything that does not depend on the state, over all frames
+of a batch; the state machine steps frame by frame only where some state can move.
 """
 
 from __future__ import annotations
