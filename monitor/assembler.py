@@ -255,8 +255,9 @@ class Assembler:
 class RpmTrack:
     """The recent mechanical RPM of every motor, for frame windows (bounded rows).
 
-    Rows ``[t, rpm x M, throttle x M, not-valid x M]`` of the last ``keep_s`` seconds, in one
-    array, so a window costs two binary searches and a slice.
+    Rows ``[t, rpm x M, throttle x M, not-valid x M]`` in one preallocated array, so a window costs
+    two binary searches and a slice. When it fills, rows older than ``keep_s`` before the newest
+    (and any beyond ``capacity``) are dropped; memory is fixed at creation.
     """
 
     def __init__(self, motors: int, capacity: int = 20_000, rate_hz: float = 500.0, keep_s: float = 4.0):
@@ -266,10 +267,6 @@ class RpmTrack:
         self.keep_s = keep_s
         self._store = np.zeros((capacity + 256, 1 + 3 * motors))  # rows [0, _n) are held
         self._n = 0
-
-    @property
-    def _rows(self) -> np.ndarray:
-        return self._store[: self._n]
 
     def add(self, u: MotorUpdate) -> None:
         if u.rpm.shape[1] != self.motors or u.t_s.size == 0:
@@ -316,17 +313,5 @@ class RpmTrack:
                 mean[i] = avg[1 : 1 + m]
                 mthr[i] = avg[1 + m : 1 + 2 * m]
                 latest[i] = rows[b - 1, 1 : 1 + m]
-                ok[i] = avg[1 + 2 * m :] == 0
-        return mean, latest, mthr, ok
-        t = rows[:, 0]
-        lo = np.searchsorted(t, t0, side="left")
-        hi = np.searchsorted(t, t1, side="left")
-        for i in range(f):
-            if hi[i] > lo[i]:
-                blk = rows[lo[i] : hi[i]]
-                avg = blk.mean(axis=0)
-                mean[i] = avg[1 : 1 + m]
-                mthr[i] = avg[1 + m : 1 + 2 * m]
-                latest[i] = blk[-1, 1 : 1 + m]
                 ok[i] = avg[1 + 2 * m :] == 0
         return mean, latest, mthr, ok

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import threading
 from dataclasses import dataclass, field
+from typing import NamedTuple
 
 import numpy as np
 
@@ -36,10 +37,21 @@ class EngineConfig:
     history_s: float = 30.0  #: samples kept for analysis (bounded)
     stray_peaks: bool = True
     #: detectors (motor windows, orders, crossing watch, stray peaks) run over the frames gathered
-    #: since their last run once the oldest has waited this long (stream seconds); spectra,
-    #: averages and the waterfall are updated at once. Results do not depend on it, only the
-    #: per-call cost and how soon events appear (0 runs them on every frame batch).
+    #: since their last run once the oldest has waited this long (stream seconds); the newest
+    #: spectrum is available at once, the average, peak hold and waterfall when first read.
+    #: Results do not depend on it, only the per-call cost and how soon events appear (0 runs the
+    #: detectors on every frame batch).
     detect_every_s: float = 0.1
+
+
+class _Waiting(NamedTuple):
+    """Frames computed but not yet seen by the detectors."""
+
+    t0: np.ndarray  #: (F,) window start, s
+    t1: np.ndarray  #: (F,) window end, s
+    psd: np.ndarray  #: (F, bins, 3)
+    amp_factor: np.ndarray  #: (bins,)
+    first: int  #: engine frame index of the first
 
 
 @dataclass(frozen=True)
@@ -80,7 +92,7 @@ class Engine:
         self._last_t = 0.0
         self._rpm_estimated = False
         self._last_sample_t = 0.0
-        self._pending: list = []  #: frame batches waiting for the detectors
+        self._pending: list[_Waiting] = []  #: frame batches waiting for the detectors
         self._unfolded: list = []  #: frame batches not yet in the average, peak hold and waterfall
         self._carry: list = []  #: events of a flush outside feed(), handed out by the next call
         self.detected = 0  #: frames the detectors have seen
@@ -183,7 +195,7 @@ class Engine:
                     text = (f"{i.board_id or 'device'}: gyro {i.sample_rate_hz:g} Hz, {float(i.counts_per_dps):g} "
                             f"counts per deg/s, {filt}, {i.motor_count} motors, {i.pole_pairs} pole pairs")
                     new.append(Notice("device", self._last_t, text, {"reboot": it.reboot}))
-            if self._pending and self._last_sample_t - self._pending[0][1][0] >= self.config.detect_every_s:
+            if self._pending and self._last_sample_t - self._pending[0].t1[0] >= self.config.detect_every_s:
                 self._detect(new)
             self._keep(new)
         return new
@@ -225,7 +237,7 @@ class Engine:
         psd = fb.psd
         self._unfolded.append((psd, t1, self._gap_pending))
         self._gap_pending = False
-        self._pending.append((t0, t1, psd, fb.amp_factor, self.frames))
+        self._pending.append(_Waiting(t0, t1, psd, fb.amp_factor, self.frames))
         self.frames += t0.shape[0]
         self.last_psd = psd[-1]
         self._amp_factor = fb.amp_factor  # amplitude of the newest frame is derived when a view asks
@@ -278,13 +290,11 @@ class Engine:
         if not self._pending:
             return
         pend, self._pending = self._pending, []
+        amp_factor, first = pend[0].amp_factor, pend[0].first
         if len(pend) == 1:
-            t0, t1, psd, amp_factor, first = pend[0]
+            t0, t1, psd = pend[0].t0, pend[0].t1, pend[0].psd
         else:
-            t0 = np.concatenate([p[0] for p in pend])
-            t1 = np.concatenate([p[1] for p in pend])
-            psd = np.concatenate([p[2] for p in pend])
-            amp_factor, first = pend[0][3], pend[0][4]
+            t0, t1, psd = (np.concatenate([getattr(p, k) for p in pend]) for k in ("t0", "t1", "psd"))
         spec = self.spec
         fs = spec.fs_hz
         f = t0.shape[0]

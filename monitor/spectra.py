@@ -148,11 +148,6 @@ class RollingSTFT:
         self._next = 0  # segment index where the next frame starts
         self.samples = 0  # samples pushed into this segment
 
-    @property
-    def _buf(self) -> np.ndarray:
-        """The buffered samples (C, n): a view."""
-        return self._store[:, : self._fill]
-
     def _append(self, x: np.ndarray) -> None:
         """Append (C, n) samples, dropping columns no future frame needs and growing if needed."""
         n = x.shape[1]

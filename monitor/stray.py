@@ -102,9 +102,7 @@ class StrayPeakFinder:
 
     def update(self, t_s: float, psd: np.ndarray, rpm_mean: np.ndarray) -> list[StrayPeak]:
         """One frame: ``psd`` (bins, 3) in (deg/s)^2/Hz, ``rpm_mean`` (motors,). Returns new reports."""
-        db = 10 * np.log10(np.maximum(psd.sum(axis=1), 1e-30))
-        floor = ndimage.median_filter(db, size=FLOOR_BINS, mode="nearest")
-        return self._search(t_s, psd, db, floor, rpm_mean)
+        return self.update_many(np.array([t_s]), psd[None], np.asarray(rpm_mean)[None])
 
     def _search(self, t_s: float, psd: np.ndarray, db: np.ndarray, floor: np.ndarray,
                 rpm_mean: np.ndarray) -> list[StrayPeak]:

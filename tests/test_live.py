@@ -335,17 +335,20 @@ def test_detector_batching_and_stream_cuts_never_change_the_events():
         assert run(every, cut) == every_frame, (every, cut)
 
 
+class _QueueOnly:
+    """Just the part of a Link that a Session reads: its queue, filled by the test."""
+
+    def __init__(self):
+        import queue
+
+        self.queue = queue.Queue()
+
+
 def test_an_idle_link_finishes_the_waiting_frames():
     # nothing arrives for a while: the frames still waiting for the detectors are finished
     _, _, _, items = _pipeline([], 2.0)
 
-    class Quiet:
-        def __init__(self):
-            import queue
-
-            self.queue = queue.Queue()
-
-    link = Quiet()
+    link = _QueueOnly()
     eng = Engine(EngineConfig(detect_every_s=10.0), load_profile(PROFILE))
     session = Session(eng, link)
     link.queue.put((0.0, []))
@@ -361,13 +364,7 @@ def test_drain_after_the_link_stops_processes_every_entry_and_finishes_the_frame
     # what headless watch does when it stops: nothing queued may be left, no frame left undetected
     _, _, _, items = _pipeline([], 2.0)
 
-    class Stopped:
-        def __init__(self):
-            import queue
-
-            self.queue = queue.Queue()
-
-    link = Stopped()
+    link = _QueueOnly()
     eng = Engine(EngineConfig(detect_every_s=10.0), load_profile(PROFILE))
     session = Session(eng, link)
     eng.feed(items[:1])  # the device description

@@ -333,10 +333,10 @@ class TextPanel(Widget):
     def set_lines(self, lines: list[Line]) -> None:
         if lines == self._lines:
             return
-        grew = len(lines) != len(self._lines)
+        count_changed = len(lines) != len(self._lines)
         self._lines = list(lines)
         self._strips.clear()
-        if grew and self.auto_height:
+        if count_changed and self.auto_height:
             self.styles.height = max(1, len(lines)) + self.styles.gutter.height  # the only case needing a layout
         self.refresh()
 
@@ -346,7 +346,7 @@ class TextPanel(Widget):
         if hit is not None and hit.cell_length == w:
             return hit
         if y >= len(self._lines):
-            strip = Strip([Segment(" " * w, self.base_style)], w)
+            strip = _text_strip("", w, self.base_style)
         else:
             line = self._lines[y]
             segs = [Segment(line, self.base_style)] if isinstance(line, str) else [Segment(t, s) for t, s in line]
@@ -382,7 +382,7 @@ class EventLog(Widget):
         w, h = self.size.width, self.size.height
         i = len(self.lines) - h + y  # the last h lines fill the panel, oldest first
         if i < 0:
-            return Strip([Segment(" " * w, BASE)], w)
+            return _text_strip("", w)
         key = (self.total - len(self.lines) + i, w)
         hit = self._strips.get(key)
         if hit is None:
