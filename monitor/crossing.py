@@ -1,24 +1,45 @@
-"""The crossing watch: for every mode x motor x order, is a motor harmonic near a frame mode?
+"""The crossing watch: is a motor harmonic passing a frame mode, for every mode and order?
 
-States (our own words): ``clear``, ``nearing``, ``crossing``.
+One voice per (mode, order), a *group*: its state is the worst over the motors, and it raises an
+event only when that state changes. Inside a group each motor is a *channel*. The states are
+spinrig's own words:
 
-- nearing: the order frequency is inside the mode's margin and closing in. The margin is the
-  wider of 10 % of the mode frequency and three half-bandwidths (3 zeta f_n).
-- crossing: the order is inside the half-power band f_n (1 -+ zeta), or inside the margin while
-  the level at the mode is at least 6 dB over its running floor.
-- a rise (clear to nearing, or to crossing) must hold for two frames running, so a spin-up that
-  flashes through a mode in one frame raises nothing;
-- back to clear: the order leaves the band (or the margin) by a hysteresis factor and the level
-  falls 2 dB below the crossing threshold, so a steady throttle at a boundary does not chatter.
+- **crossing**: the order of at least one motor is inside the mode's *watch band*, the half-power
+  band f_n (1 -+ zeta) widened by what measurement needs: half a frequency bin (df / 2) and the
+  RPM reading's uncertainty u f_n (u = 0.5 % with telemetry, 1 % when the speed is estimated from
+  the spectrum). Never earlier. An order that steps over the whole band between two frames (a fast
+  sweep of a high order) is a crossing too, reported at the speed where it met f_n. The event's
+  RPM lies inside the watch band it prints.
+- **nearing**: an order is inside the mode's *margin* (the wider of 10 % of f_n and three
+  half-bandwidths, 3 zeta f_n) and closing in, or would reach the watch band within
+  :data:`LOOKAHEAD_S` at its present closing speed, or is inside the margin while the response at
+  the mode stands :data:`NEAR_LEVEL_DB` or more over its floor (the event says which).
+- **clear**: no order inside the margin.
 
-Every transition is an event with the time, motor, order, mode, RPM, order frequency, the level
-at the mode in dB (re 1 (deg/s)^2/Hz) and the predicted band 60 f (1 -+ zeta) / k in RPM.
-Vectorised over all channels and, for everything that does not depend on the state, over all frames
-of a batch; the state machine steps frame by frame only where some state can move.
+Hysteresis is in frequency and in time. A group stays crossing while an order is within the watch
+band plus :func:`exit_allowance` or another motor's order of the group is still closing in (so one
+passage of four motors a few percent apart is one voice), and stays nearing while an order is
+inside 1.15 times the margin; it steps down only after its reason to stay has been gone for
+:data:`DWELL_S`. A passage therefore makes at most four events: nearing, crossing, nearing on the
+way out, clear.
+
+The speed used is each motor's straight-line fit over the last 0.5 s of readings, evaluated at the
+frame's end (:meth:`monitor.assembler.RpmTrack.trend`); "closing" needs the fitted slope to stand
+:data:`SLOPE_SIGMAS` standard errors (plus :data:`SLOPE_FLOOR_RPM_S`) clear of zero, so speed
+jitter at a steady throttle is not an approach.
+
+The response level at the mode (dB re 1 (deg/s)^2/Hz, smoothed over 0.15 s, against a floor over
+0.6..1.4 f_n outside the band) is a severity carried by every event, not a state.
+The *predicted band* of a group is 60 f_n (1 -+ zeta) / k RPM; its *observed band* is the RPM range
+over which the group was crossing (the speeds of the motors whose order was in the watch band).
+
+Everything that does not depend on the state is computed for all frames of a batch at once; the
+state machine steps frame by frame only where some group is not clear or could rise.
 """
 
 from __future__ import annotations
 
+from collections import deque
 from dataclasses import dataclass
 
 import numpy as np
@@ -29,69 +50,131 @@ from .profile import Profile
 CLEAR, NEARING, CROSSING = 0, 1, 2
 STATE_NAMES = ("clear", "nearing", "crossing")
 
-MARGIN_FRACTION = 0.10
-MARGIN_HALF_BANDWIDTHS = 3.0
-LEVEL_OVER_FLOOR_DB = 6.0
-RELEASE_DB = 2.0
-PERSIST_FRAMES = 2  #: a rise to nearing or crossing must be proposed in this many frames running
-EXIT_MARGIN = 1.15  #: nearing -> clear when the distance exceeds this times the margin
-EXIT_BAND = 1.5  #: crossing -> clear when the distance exceeds this times the half band
+MARGIN_FRACTION = 0.10  #: the margin is the wider of this share of f_n ...
+MARGIN_HALF_BANDWIDTHS = 3.0  #: ... and this many half-bandwidths zeta f_n
+EXIT_MARGIN = 1.15  #: a group stays nearing while an order is inside this times the margin
+LOOKAHEAD_S = 0.8  #: nearing when the order would reach the watch band within this time
+DWELL_S = 0.5  #: a group steps down only after its reason to stay has been gone this long (s)
+NEAR_LEVEL_DB = 6.0  #: response over its floor that makes an order inside the margin nearing
+#: relative uncertainty of a fitted telemetry speed: the line fitted over 0.5 s stays within 0.5 %
+#: of the commanded speed in 99.9 % of frames with the simulator's speed jitter (0.2 %, correlated
+#: over 50 ms; measured, tests/test_crossing_watch.py). Real telemetry may scatter more or less.
+RPM_UNCERTAINTY_TELEMETRY = 0.005
+RPM_UNCERTAINTY_ESTIMATE = 0.01  #: relative uncertainty of a speed estimated from the spectrum
+SLOPE_SIGMAS = 3.0  #: a speed trend is an approach when its slope stands this many standard errors clear
+SLOPE_FLOOR_RPM_S = 5.0  #: ... plus this (RPM/s)
+#: a motor whose readings stray from a straight line by more than this share of its speed (RMS over
+#: the trend's 0.5 s) is starting, stopping or stepping: it raises nothing until it settles
+UNSETTLED_FRACTION = 0.02
 FLOOR_TAU_S = 3.0
 LEVEL_TAU_S = 0.15  #: the level at a mode is smoothed: one frame's PSD bin has chi-squared (2 dof) scatter
+MAX_PASSAGES = 2000  #: observed bands kept per watch (older ones are merged into the totals)
+
+
+def watch_half_band(f_n, zeta, bin_hz: float, estimated=False):
+    """Half-width (Hz) of the watch band around f_n: zeta f_n + df / 2 + u f_n."""
+    u = np.where(estimated, RPM_UNCERTAINTY_ESTIMATE, RPM_UNCERTAINTY_TELEMETRY)
+    return zeta * f_n + 0.5 * bin_hz + u * f_n
+
+
+def exit_allowance(f_n, zeta, estimated=False):
+    """How far (Hz) past the watch band an order may stray before a crossing group may step down:
+    the wider of a quarter half-bandwidth and 1.5 times the RPM uncertainty."""
+    u = np.where(estimated, RPM_UNCERTAINTY_ESTIMATE, RPM_UNCERTAINTY_TELEMETRY)
+    return np.maximum(0.25 * zeta * f_n, 1.5 * u * f_n)
+
+
+@dataclass(frozen=True)
+class MotorReading:
+    motor: int  #: 1-based
+    rpm: float
+    order_hz: float
+    state: str  #: this motor's own condition: crossing (in the watch band), nearing (inside the margin), clear
+
+    def as_dict(self) -> dict:
+        return {"motor": self.motor, "rpm": round(self.rpm, 1), "order_hz": round(self.order_hz, 2),
+                "state": self.state}
 
 
 @dataclass(frozen=True)
 class CrossingEvent:
+    """A (mode, order) group changed state."""
+
     t_s: float
     state: str
+    previous: str
     mode: str
     mode_hz: float
-    motor: int  #: 1-based
     order: float  #: multiple of the shaft frequency
     order_name: str
-    rpm: float
+    motor: int  #: the motor that set the state (1-based)
+    rpm: float  #: its speed (for a crossing: inside ``watch_rpm``)
     order_hz: float
-    level_db: float
+    level_db: float  #: response at the mode, dB re 1 (deg/s)^2/Hz
     floor_db: float
-    band_rpm: tuple[float, float]
+    predicted_rpm: tuple[float, float]  #: 60 f_n (1 -+ zeta) / k
+    watch_rpm: tuple[float, float]  #: the watch band in RPM: crossing is declared inside it
+    motors: tuple[MotorReading, ...] = ()
+    reason: str = ""
+    estimated: bool = False  #: the speeds are estimated from the spectrum
+
+    @property
+    def over_floor_db(self) -> float:
+        return self.level_db - self.floor_db
 
     def as_dict(self) -> dict:
         return {
             "kind": self.state,
+            "previous": self.previous,
             "t_s": round(self.t_s, 4),
             "mode": self.mode,
             "mode_hz": round(self.mode_hz, 2),
-            "motor": self.motor,
             "order": self.order,
             "order_name": self.order_name,
+            "motor": self.motor,
             "rpm": round(self.rpm, 1),
             "order_hz": round(self.order_hz, 2),
             "level_db": round(self.level_db, 2),
-            "floor_db": round(self.floor_db, 2),
-            "band_rpm": [round(self.band_rpm[0], 1), round(self.band_rpm[1], 1)],
+            "over_floor_db": round(self.over_floor_db, 2),
+            "predicted_rpm": [round(self.predicted_rpm[0], 1), round(self.predicted_rpm[1], 1)],
+            "watch_rpm": [round(self.watch_rpm[0], 1), round(self.watch_rpm[1], 1)],
+            "motors": [m.as_dict() for m in self.motors],
+            "reason": self.reason,
+            "rpm_estimated": self.estimated,
         }
 
+    def motor_list(self, states=("crossing", "nearing")) -> str:
+        """"M1,M2" for the motors in the given states (the lead motor alone if none)."""
+        ms = [m.motor for m in self.motors if m.state in states] or [self.motor]
+        return "M" + ",".join(str(m) for m in ms)
+
     def text(self) -> str:
+        est = " est." if self.estimated else ""
+        who = self.motor_list(("crossing",) if self.state == "crossing" else ("crossing", "nearing"))
         return (
-            f"{self.t_s:8.2f} s  {self.state.upper():8s} motor {self.motor} {self.order_name} at "
-            f"{self.order_hz:6.1f} Hz ({self.rpm:6.0f} RPM) -> {self.mode} {self.mode_hz:.1f} Hz; "
-            f"band {self.band_rpm[0]:.0f}-{self.band_rpm[1]:.0f} RPM; level {self.level_db:+.1f} dB "
-            f"({self.level_db - self.floor_db:+.1f} over floor)"
+            f"{self.t_s:8.2f} s  {self.state.upper():8s} {self.order_name} of {who} at {self.order_hz:.1f} Hz "
+            f"({self.rpm:.0f} RPM{est}) on {self.mode} {self.mode_hz:.1f} Hz; watch band "
+            f"{self.watch_rpm[0]:.0f}-{self.watch_rpm[1]:.0f} RPM; {self.reason}; response "
+            f"{self.over_floor_db:+.1f} dB over its floor ({self.level_db:.1f} dB re (deg/s)^2/Hz)"
         )
 
 
 @dataclass
-class Band:
-    """An RPM range in which one order kept one mode in the crossing state."""
+class ObservedBand:
+    """The RPM range over which one (mode, order) group was crossing, on one or more passages."""
 
     mode: str
     mode_hz: float
     order: float
     order_name: str
-    motor: int
+    motors: tuple[int, ...]
     rpm_low: float
     rpm_high: float
-    peak_db: float
+    peak_db: float  #: highest response at the mode while crossing, dB re 1 (deg/s)^2/Hz
+    predicted_rpm: tuple[float, float]
+    passages: int = 1
+    t_start_s: float = 0.0
+    t_end_s: float = 0.0
 
     def as_dict(self) -> dict:
         return {
@@ -99,52 +182,57 @@ class Band:
             "mode_hz": round(self.mode_hz, 2),
             "order": self.order,
             "order_name": self.order_name,
-            "motor": self.motor,
-            "rpm_low": round(self.rpm_low, 1),
-            "rpm_high": round(self.rpm_high, 1),
+            "motors": list(self.motors),
+            "observed_rpm": [round(self.rpm_low, 1), round(self.rpm_high, 1)],
+            "predicted_rpm": [round(self.predicted_rpm[0], 1), round(self.predicted_rpm[1], 1)],
             "peak_db": round(self.peak_db, 2),
+            "passages": self.passages,
+            "t_start_s": round(self.t_start_s, 3),
+            "t_end_s": None if np.isnan(self.t_end_s) else round(self.t_end_s, 3),  # None: still crossing
         }
 
 
-def _transition_table() -> np.ndarray:
-    """new state = table[state, condition bits]: bit 0 inside the margin and closing in, bit 1
-    inside the band or hot (level over the floor inside the margin), bit 2 past the nearing exit,
-    bit 3 past the crossing exit (far from the band and cooled, or out of the margin)."""
-    t = np.zeros((3, 16), dtype=np.int8)
-    for c in range(16):
-        approach, hit, gone, left = c & 1, c & 2, c & 4, c & 8
-        t[CLEAR, c] = CROSSING if hit else NEARING if approach else CLEAR
-        t[NEARING, c] = CROSSING if hit else CLEAR if gone else NEARING
-        t[CROSSING, c] = CLEAR if left else CROSSING
-    return t
-
-
-_TRANSITIONS = _transition_table()
-
-
 class CrossingWatch:
+    """The crossing state of every (mode, order) group of a profile, frame by frame."""
+
     def __init__(self, profile: Profile, motors: int, freqs: np.ndarray, hop_s: float):
         self.profile = profile
         self.motors = motors
         modes = profile.modes
         self.mult = order_multipliers(profile.blades)
-        self._mult60 = (self.mult / 60.0)[None, None, None, :]
-        self.f_mode = np.array([m.freq_hz for m in modes])[:, None, None]  # (N, 1, 1)
-        self.zeta = np.array([m.damping_ratio for m in modes])[:, None, None]
-        self.half_band = self.f_mode * self.zeta
-        self.margin = np.maximum(MARGIN_FRACTION * self.f_mode, MARGIN_HALF_BANDWIDTHS * self.half_band)
-        self._exit_margin = EXIT_MARGIN * self.margin
-        self._exit_band = EXIT_BAND * self.half_band
-        shape = (len(modes), motors, len(self.mult))
-        self.state = np.zeros(shape, dtype=np.int8)
-        self._proposed = np.zeros(shape, dtype=np.int8)
-        self._runs = np.zeros(shape, dtype=np.int16)
-        self.floor_db = np.full(len(modes), np.nan)
-        self.level_db = np.full(len(modes), np.nan)
+        self._mult60 = self.mult / 60.0
+        nm, nk = len(modes), len(self.mult)
+        self.f_mode = np.array([m.freq_hz for m in modes], dtype=float)
+        self.zeta = np.array([m.damping_ratio for m in modes], dtype=float)
+        self.bin_hz = float(freqs[1] - freqs[0])
+        self.margin = np.maximum(MARGIN_FRACTION * self.f_mode, MARGIN_HALF_BANDWIDTHS * self.zeta * self.f_mode)
+        self._labels = [order_label(float(k), profile.blades) for k in self.mult]
+        self._predicted = [[m.rpm_band(float(k)) for k in self.mult] for m in modes]
+        self.state = np.zeros((nm, nk), dtype=np.int8)
+        self._last_keep = np.zeros((nm, nk))
+        self._prev_s = np.full((nm, motors, nk), np.nan)  #: signed offset of each channel in the last frame
+        self._prev_rpm = np.full(motors, np.nan)
+        self.floor_db = np.full(nm, np.nan)
+        self.level_db = np.full(nm, np.nan)
         self.alpha = 1.0 - np.exp(-hop_s / FLOOR_TAU_S)
         self.level_alpha = 1.0 - np.exp(-hop_s / LEVEL_TAU_S)
+        self._setup_levels(freqs)
+        # the open observed band of every group: RPM low/high, peak level, motors, start
+        self._b_lo = np.full((nm, nk), np.inf)
+        self._b_hi = np.full((nm, nk), -np.inf)
+        self._b_peak = np.full((nm, nk), -np.inf)
+        self._b_motors = np.zeros((nm, motors, nk), bool)
+        self._b_t0 = np.zeros((nm, nk))
+        self.passages: deque[ObservedBand] = deque(maxlen=MAX_PASSAGES)
+        self._merged_old: dict[tuple[str, float], ObservedBand] = {}
+        # the last frame seen, for views: per channel offset, speed, state
+        self._last = None
+        self._last_estimated = False
+
+    def _setup_levels(self, freqs: np.ndarray) -> None:
+        modes = self.profile.modes
         nb = freqs.shape[0]
-        df = freqs[1] - freqs[0]
+        df = self.bin_hz
         band_idx, floor_w = [], np.zeros((nb, len(modes)))
         for j, m in enumerate(modes):
             lo, hi = m.band_hz
@@ -156,25 +244,15 @@ class CrossingWatch:
             band_idx.append(bb)
             floor_w[fb, j] = 1.0 / fb.size
         width = max(len(b) for b in band_idx) if band_idx else 1
-        #: (modes, width) bin indices of each half-power band, padded by repeating its first bin
         padded = [np.pad(b, (0, width - len(b)), mode="edge") for b in band_idx]
         band = np.array(padded, dtype=np.int64).reshape(len(modes), -1)
         #: the bins any mode reads (bands and floors): only these are converted to dB
         self._cols = np.union1d(band.ravel(), np.flatnonzero(floor_w.any(axis=1))).astype(np.int64)
-        #: (modes, width) positions of each band's bins within ``_cols``
         self._band_idx = np.searchsorted(self._cols, band)
         #: (cols, modes): the floor is the mean level in dB over 0.6..1.4 f_n outside the band
         self._floor_w = floor_w[self._cols]
-        self._runs_any = False
-        self._quiet = True  #: every channel clear with no rise pending (the common case: nothing to do)
-        # open bands, per channel: RPM low/high and peak level while in the crossing state
-        self._b_open = np.zeros(shape, dtype=bool)
-        self._b_lo = np.full(shape, np.inf)
-        self._b_hi = np.full(shape, -np.inf)
-        self._b_peak = np.full(shape, -np.inf)
-        self._any_open = False
-        self._any_state = False  #: some channel is not clear
-        self.bands: list[Band] = []
+
+    # ---------------------------------------------------------------- levels
 
     def levels(self, psd_sum: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """(level, local floor) at each mode in dB for frames' PSD summed over axes (F, bins)."""
@@ -199,140 +277,307 @@ class CrossingWatch:
         self.level_db, self.floor_db = cur_l, cur_f
         return lv, fl
 
-    def update(self, t_s: np.ndarray, psd_sum: np.ndarray, rpm_latest: np.ndarray, rpm_mean: np.ndarray) -> list:
-        """Advance over F frames. ``psd_sum`` (F, bins); RPM arrays (F, motors). Returns events.
+    # ---------------------------------------------------------------- frames
 
-        Everything that does not depend on the state (geometry, smoothed levels, condition bits)
-        is computed for all frames at once; only the state machine steps frame by frame.
+    def break_series(self) -> None:
+        """The series broke (a gap): no step over a band is inferred across it."""
+        self._prev_s[:] = np.nan
+        self._prev_rpm[:] = np.nan
+
+    def update(self, t_s: np.ndarray, psd_sum: np.ndarray, rpm: np.ndarray, slope: np.ndarray | None = None,
+               slope_se: np.ndarray | None = None, estimated: np.ndarray | None = None,
+               residual_rms: np.ndarray | None = None) -> list[CrossingEvent]:
+        """Advance over F frames ending at ``t_s`` (F,) s.
+
+        ``psd_sum`` (F, bins) PSD summed over axes, (deg/s)^2/Hz; ``rpm`` (F, motors) each motor's
+        speed at the frame's end, RPM; ``slope`` and ``slope_se`` (F, motors) its rate of change
+        and that rate's standard error, RPM/s (None: no trend known, nothing is closing);
+        ``estimated`` (F,) speeds estimated from the spectrum; ``residual_rms`` (F, motors) how far
+        the readings stray from that line, RPM: a motor whose speed does not follow a line (it
+        starts or stops: more than :data:`UNSETTLED_FRACTION` of its speed) raises nothing.
+        Returns the events, in time order.
         """
-        events = []
         modes = self.profile.modes
-        if not modes:
-            return events
-        lv_seq, fl_seq = self._smoothed(*self.levels(psd_sum))
-        # geometry of every frame at once: order frequencies against the modes, (F, N, M, K)
-        if not np.isfinite(rpm_mean).all():  # no mean over the window: the latest reading stands in
-            rpm_mean = np.where(np.isfinite(rpm_mean), rpm_mean, rpm_latest)
-        f_now = rpm_latest[:, None, :, None] * self._mult60
-        d_now = np.abs(f_now - self.f_mode)
-        closing = d_now < np.abs(rpm_mean[:, None, :, None] * self._mult60 - self.f_mode) - 1e-6
-        in_margin = d_now <= self.margin
-        over = (lv_seq - fl_seq)[:, :, None, None]  # (F, N, 1, 1)
-        approach = in_margin & closing
-        hit = (d_now <= self.half_band) | (in_margin & (over >= LEVEL_OVER_FLOOR_DB))
-        gone = d_now > self._exit_margin
-        left = (d_now > self._exit_band) & ((over < LEVEL_OVER_FLOOR_DB - RELEASE_DB) | ~in_margin)
-        # the condition bits of the transition table, from the booleans viewed as 0/1 bytes
-        cond = approach.view(np.uint8) | (hit.view(np.uint8) << 1)
-        cond |= gone.view(np.uint8) << 2
-        cond |= left.view(np.uint8) << 3
-        fin = np.isfinite(rpm_latest).all(axis=1)
-        rising = (approach | hit).reshape(cond.shape[0], -1).any(axis=1)  # any approach or hit
         nf = len(t_s)
+        if not modes or nf == 0:
+            return []
+        lv_seq, fl_seq = self._smoothed(*self.levels(psd_sum))
+        if slope is None:
+            slope = np.zeros_like(rpm)
+            slope_se = np.full_like(rpm, np.inf)
+        est = np.zeros(nf, bool) if estimated is None else np.asarray(estimated, bool)
+        if residual_rms is None:
+            settled = np.ones(rpm.shape, bool)
+        else:
+            settled = ~(np.nan_to_num(residual_rms, nan=0.0) > UNSETTLED_FRACTION * np.abs(rpm))
+        g = self._geometry(rpm, slope, slope_se, est, lv_seq - fl_seq, settled)
+        events: list[CrossingEvent] = []
+        fin = np.isfinite(rpm).all(axis=1)
+        can_rise = (g.rise_x | g.rise_n).reshape(nf, -1).any(axis=1) & fin
         i = 0
         while i < nf:
-            if not self._runs_any:
-                # the frames from i on in which no state would move with the states held skip as a
-                # block (from all-clear only an approach or a hit can move one): bands extend over them
-                if self._quiet:
-                    moving = rising[i:] & fin[i:]
-                else:
-                    moving = (_TRANSITIONS[self.state, cond[i:]] != self.state).reshape(nf - i, -1).any(axis=1)
-                    moving &= fin[i:]
-                j = i + int(np.argmax(moving)) if moving.any() else nf
-                if j > i:
-                    if self._any_open:
-                        keep = fin[i:j]
-                        self._extend_bands(rpm_latest[i:j][keep], lv_seq[i:j][keep])
-                    i = j
-                    if i >= nf:
-                        break
-            if not fin[i]:
-                i += 1
-                continue
-            s = self.state
-            new = _TRANSITIONS[s, cond[i]]
-            # rises need PERSIST_FRAMES consecutive proposals (a spin-up flashing past is no crossing)
-            rise = new > s
-            if self._runs_any or rise.any():
-                self._runs = np.where(rise & (new == self._proposed), self._runs + 1, rise.astype(np.int16))
-                self._proposed = np.where(rise, new, 0).astype(np.int8)
-                new = np.where(rise & (self._runs < PERSIST_FRAMES), s, new).astype(np.int8)
-                self._runs_any = bool(self._runs.any())
-            changed = new != s
-            if changed.any():
-                self._open_close_bands(new)
-                r_now = rpm_latest[i]
-                for n, m, k in zip(*np.nonzero(changed), strict=True):
-                    mode = modes[n]
-                    mult = float(self.mult[k])
-                    events.append(
-                        CrossingEvent(
-                            float(t_s[i]), STATE_NAMES[new[n, m, k]], mode.name, mode.freq_hz, int(m) + 1, mult,
-                            order_label(mult, self.profile.blades), float(r_now[m]), float(f_now[i, 0, m, k]),
-                            float(lv_seq[i, n]), float(fl_seq[i, n]), mode.rpm_band(mult),
-                        )
-                    )
-                self.state = new
-            self._quiet = not (self._runs_any or self._any_state)
-            if self._any_open:  # extend the open bands (channels in the crossing state) by this frame
-                self._extend_bands(rpm_latest[i : i + 1], lv_seq[i : i + 1])
+            if not self.state.any():
+                # all clear: frames in which nothing can rise pass as a block
+                nxt = np.flatnonzero(can_rise[i:])
+                if nxt.size == 0:
+                    break
+                i += int(nxt[0])
+            if fin[i]:
+                self._step(i, float(t_s[i]), g, rpm[i], lv_seq[i], fl_seq[i], bool(est[i]), events)
             i += 1
+        # carry the last frame's offsets (for steps over a band) and keep it for views
+        last = int(np.flatnonzero(fin)[-1]) if fin.any() else -1
+        if last >= 0:
+            self._prev_s = g.s[last].copy()
+            self._prev_rpm = rpm[last].copy()
+            self._last = (g.d[last], rpm[last], g.chan_state[last], g.s[last])
+            self._last_estimated = bool(est[last])
         return events
 
-    def _band(self, n: int, m: int, k: int) -> Band:
+    def _geometry(self, rpm, slope, slope_se, est, over, settled):
+        """Conditions of every channel and group in every frame (state-free, vectorised)."""
+        f_n = self.f_mode[None, :, None, None]
+        zeta = self.zeta[None, :, None, None]
+        e4 = est[:, None, None, None]
+        fo = rpm[:, None, :, None] * self._mult60  # (F, 1, M, K) order frequencies, Hz
+        s = fo - f_n  # (F, N, M, K) signed offset from the mode
+        d = np.abs(s)
+        w = watch_half_band(f_n, zeta, self.bin_hz, e4)  # (F, N, 1, 1)
+        in_band = d <= w
+        # a step over the whole band since the previous frame (fast sweeps of high orders)
+        prev = np.concatenate([self._prev_s[None], s[:-1]], axis=0)
+        with np.errstate(invalid="ignore"):
+            jump = (prev * s < 0) & (np.abs(prev) > w) & (d > w)
+        prev_rpm = np.concatenate([self._prev_rpm[None], rpm[:-1]], axis=0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            frac = np.where(jump, prev / (prev - s), 0.0)
+        rpm_b = rpm[:, None, :, None]
+        rpm_jump = prev_rpm[:, None, :, None] + (rpm_b - prev_rpm[:, None, :, None]) * frac
+        # closing speed of each order toward its mode, Hz/s (> 0 approaching), when the trend is clear
+        sig = np.abs(slope) > SLOPE_SIGMAS * np.nan_to_num(slope_se, nan=np.inf) + SLOPE_FLOOR_RPM_S
+        v = -np.sign(s) * (np.nan_to_num(slope)[:, None, :, None] * self._mult60)
+        closing = sig[:, None, :, None] & (v > 0)
+        margin = self.margin[None, :, None, None]
+        in_margin = d <= margin
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ttb = np.where(closing, (d - w) / v, np.inf)
+        approach = closing & (in_margin | (ttb <= LOOKAHEAD_S))
+        hot = in_margin & (over[:, :, None, None] >= NEAR_LEVEL_DB)
+        near = approach | hot
+        keep_band = d <= w + exit_allowance(f_n, zeta, e4)
+        in_exit = d <= EXIT_MARGIN * margin
+        ok = settled[:, None, :, None]
+        jump &= ok
+        near &= ok
+        approach &= ok
+        chan_state = np.where(in_band | jump, CROSSING, np.where(near | in_exit, NEARING, CLEAR)).astype(np.int8)
+        return _Geometry(
+            s=s, d=d, w=w, in_band=in_band, jump=jump, rpm_jump=rpm_jump, v=v, ttb=ttb, approach=approach,
+            hot=hot, near=near, chan_state=chan_state,
+            rise_x=((in_band & ok) | jump).any(axis=2),
+            rise_n=near.any(axis=2),
+            keep_x=(keep_band | approach).any(axis=2),
+            keep_n=(in_exit | near).any(axis=2),
+        )
+
+    def _step(self, i: int, t: float, g, rpm_i, lv, fl, est: bool, events: list) -> None:
+        s = self.state
+        rx, rn, kx, kn = g.rise_x[i], g.rise_n[i], g.keep_x[i], g.keep_n[i]
+        keep = np.where(s == CROSSING, kx, (s == NEARING) & kn)
+        self._last_keep = np.where(keep | rx, t, self._last_keep)
+        expired = (t - self._last_keep) >= DWELL_S - 1e-9
+        new = np.where(
+            rx, CROSSING,
+            np.where(s == CROSSING, np.where(expired, np.where(kn, NEARING, CLEAR), CROSSING),
+                     np.where(s == NEARING, np.where(expired, CLEAR, NEARING), np.where(rn, NEARING, CLEAR))),
+        ).astype(np.int8)
+        changed = new != s
+        if changed.any():
+            self._last_keep = np.where(changed, t, self._last_keep)
+            for n, k in zip(*np.nonzero(changed), strict=True):
+                events.append(self._event(i, t, int(n), int(k), int(s[n, k]), int(new[n, k]), g, rpm_i, lv, fl, est))
+            left = (s == CROSSING) & (new != CROSSING)
+            for n, k in zip(*np.nonzero(left), strict=True):
+                self._close_band(int(n), int(k), t)
+            entered = (s != CROSSING) & (new == CROSSING)
+            self._b_t0 = np.where(entered, t, self._b_t0)
+            self.state = new
+        crossing = self.state == CROSSING
+        if crossing.any():
+            self._extend(i, g, rpm_i, lv, crossing)
+
+    def _extend(self, i, g, rpm_i, lv, crossing) -> None:
+        """Widen the open observed bands by the speeds of the motors whose order is in the watch band."""
+        inb, jmp = g.in_band[i], g.jump[i]  # (N, M, K)
+        r = np.where(inb, rpm_i[None, :, None], np.where(jmp, g.rpm_jump[i], np.nan))
+        hit = inb | jmp
+        lo = np.where(hit, r, np.inf).min(axis=1)
+        hi = np.where(hit, r, -np.inf).max(axis=1)
+        np.minimum(self._b_lo, lo, out=self._b_lo, where=crossing)
+        np.maximum(self._b_hi, hi, out=self._b_hi, where=crossing)
+        np.maximum(self._b_peak, lv[:, None], out=self._b_peak, where=crossing)
+        self._b_motors |= hit & crossing[:, None, :]
+
+    def _close_band(self, n: int, k: int, t: float) -> None:
+        if np.isfinite(self._b_lo[n, k]):
+            self._push_passage(self._band(n, k, t))
+        self._b_lo[n, k], self._b_hi[n, k], self._b_peak[n, k] = np.inf, -np.inf, -np.inf
+        self._b_motors[n, :, k] = False
+
+    def _band(self, n: int, k: int, t_end: float) -> ObservedBand:
         mode = self.profile.modes[n]
-        mult = float(self.mult[k])
-        return Band(mode.name, mode.freq_hz, mult, order_label(mult, self.profile.blades), int(m) + 1,
-                    float(self._b_lo[n, m, k]), float(self._b_hi[n, m, k]), float(self._b_peak[n, m, k]))
+        motors = tuple(int(m) + 1 for m in np.flatnonzero(self._b_motors[n, :, k]))
+        return ObservedBand(mode.name, mode.freq_hz, float(self.mult[k]), self._labels[k], motors,
+                            float(self._b_lo[n, k]), float(self._b_hi[n, k]), float(self._b_peak[n, k]),
+                            self._predicted[n][k], 1, float(self._b_t0[n, k]), t_end)
 
-    def _extend_bands(self, rpm_rows: np.ndarray, level_rows: np.ndarray) -> None:
-        """Widen the open bands to the RPM (frames, motors) and levels (frames, modes) of some frames."""
-        if rpm_rows.shape[0] == 0:
-            return
-        crossing = self._b_open
-        if rpm_rows.shape[0] == 1:
-            r_lo = r_hi = rpm_rows[0]
-            lv = level_rows[0]
-        else:
-            r_lo, r_hi, lv = rpm_rows.min(axis=0), rpm_rows.max(axis=0), level_rows.max(axis=0)
-        np.minimum(self._b_lo, r_lo[None, :, None], out=self._b_lo, where=crossing)
-        np.maximum(self._b_hi, r_hi[None, :, None], out=self._b_hi, where=crossing)
-        np.maximum(self._b_peak, lv[:, None, None], out=self._b_peak, where=crossing)
+    def _push_passage(self, band: ObservedBand) -> None:
+        if len(self.passages) == self.passages.maxlen:
+            _merge_into(self._merged_old, self.passages[0])
+        self.passages.append(band)
 
-    def _open_close_bands(self, new: np.ndarray) -> None:
-        """After a state change: close the bands of channels that left the crossing state and open
-        those that entered it (not-open channels hold +inf / -inf, so extending opens them)."""
-        crossing = new == CROSSING
-        closing = self._b_open & ~crossing
-        if closing.any():
-            self.bands.extend(self._band(n, m, k) for n, m, k in zip(*np.nonzero(closing), strict=True))
-            self._b_lo[closing], self._b_hi[closing], self._b_peak[closing] = np.inf, -np.inf, -np.inf
-        self._b_open = crossing
-        self._any_open = bool(crossing.any())
-        self._any_state = bool(new.any())
-
-    def all_bands(self) -> list[Band]:
-        """Closed bands and the ones still open, merged per (mode, order) over all motors."""
-        merged: dict[tuple[str, float], Band] = {}
-        still = [self._band(n, m, k) for n, m, k in zip(*np.nonzero(self._b_open), strict=True)]
-        for b in [*self.bands, *still]:
-            key = (b.mode, b.order)
-            m = merged.get(key)
-            if m is None:
-                merged[key] = Band(b.mode, b.mode_hz, b.order, b.order_name, 0, b.rpm_low, b.rpm_high, b.peak_db)
+    def _event(self, i, t, n, k, old, new, g, rpm_i, lv, fl, est) -> CrossingEvent:
+        mode = self.profile.modes[n]
+        d = g.d[i, n, :, k]
+        cs = g.chan_state[i, n, :, k]
+        fo = rpm_i * self._mult60[k]
+        if new == CROSSING:
+            hit = g.in_band[i, n, :, k] | g.jump[i, n, :, k]
+            m = int(np.argmin(np.where(hit, np.where(g.jump[i, n, :, k], 0.0, d), np.inf)))
+            if g.jump[i, n, m, k] and not g.in_band[i, n, m, k]:
+                rpm, ohz = float(g.rpm_jump[i, n, m, k]), mode.freq_hz
+                reason = "stepped over the band since the last frame (met the mode there)"
             else:
-                m.rpm_low = min(m.rpm_low, b.rpm_low)
-                m.rpm_high = max(m.rpm_high, b.rpm_high)
-                m.peak_db = max(m.peak_db, b.peak_db)
+                rpm, ohz = float(rpm_i[m]), float(fo[m])
+                reason = "order inside the watch band"
+        else:
+            near = g.near[i, n, :, k]
+            if new == NEARING and near.any():
+                m = int(np.argmin(np.where(near, d, np.inf)))
+                if g.approach[i, n, m, k]:
+                    tt = g.ttb[i, n, m, k]
+                    reason = f"closing at {g.v[i, n, m, k]:.1f} Hz/s, {max(tt, 0.0):.1f} s to the band"
+                else:
+                    reason = f"inside the margin with the response {lv[n] - fl[n]:+.1f} dB over its floor"
+            else:
+                m = int(np.argmin(d))
+                reason = ("left the band, still inside the margin" if new == NEARING
+                          else "no order inside the margin")
+            rpm, ohz = float(rpm_i[m]), float(fo[m])
+        lo_w, hi_w = self._watch_rpm(n, k, est)
+        readings = tuple(MotorReading(j + 1, float(rpm_i[j]), float(fo[j]), STATE_NAMES[int(cs[j])])
+                         for j in range(self.motors))
+        return CrossingEvent(t, STATE_NAMES[new], STATE_NAMES[old], mode.name, mode.freq_hz, float(self.mult[k]),
+                             self._labels[k], m + 1, rpm, ohz, float(lv[n]), float(fl[n]), self._predicted[n][k],
+                             (lo_w, hi_w), readings, reason, est)
+
+    def _watch_rpm(self, n: int, k: int, est: bool) -> tuple[float, float]:
+        w = float(watch_half_band(self.f_mode[n], self.zeta[n], self.bin_hz, est))
+        c = 60.0 / self.mult[k]
+        return float((self.f_mode[n] - w) * c), float((self.f_mode[n] + w) * c)
+
+    # ---------------------------------------------------------------- reading
+
+    def observed_bands(self) -> list[ObservedBand]:
+        """Every passage's observed band so far (the open ones up to now), in time order."""
+        out = list(self.passages)
+        for n, k in zip(*np.nonzero((self.state == CROSSING) & np.isfinite(self._b_lo)), strict=True):
+            out.append(self._band(int(n), int(k), float("nan")))
+        return out
+
+    def all_bands(self) -> list[ObservedBand]:
+        """Observed bands merged per (mode, order) over all passages and motors, by mode frequency."""
+        merged = {key: ObservedBand(**vars(b)) for key, b in self._merged_old.items()}
+        for b in self.observed_bands():
+            _merge_into(merged, b)
         return sorted(merged.values(), key=lambda b: (b.mode_hz, b.order))
 
+    def group_states(self) -> np.ndarray:
+        """(modes, orders) state codes (0 clear, 1 nearing, 2 crossing)."""
+        return self.state.copy()
+
     def mode_states(self) -> list[dict]:
-        """Per mode: the worst state over motors and orders, and which motor/order is nearest."""
+        """Per mode: the worst group's state, its order, motors and watch band, or the nearest
+        order when all are clear; and the response level (dB re 1 (deg/s)^2/Hz) over its floor."""
         out = []
         for n, mode in enumerate(self.profile.modes):
-            s = self.state[n]
-            worst = int(s.max()) if s.size else 0
-            out.append({"mode": mode.name, "freq_hz": mode.freq_hz, "state": STATE_NAMES[worst],
-                        "level_db": float(self.level_db[n]) if np.isfinite(self.level_db[n]) else None})
+            row = self.state[n]
+            worst = int(row.max()) if row.size else 0
+            entry = {"mode": mode.name, "freq_hz": mode.freq_hz, "state": STATE_NAMES[worst],
+                     "level_db": float(self.level_db[n]) if np.isfinite(self.level_db[n]) else None,
+                     "over_floor_db": (float(self.level_db[n] - self.floor_db[n])
+                                       if np.isfinite(self.level_db[n]) and np.isfinite(self.floor_db[n]) else None)}
+            if self._last is not None:
+                d, rpm, cs, _ = self._last
+                cand = np.flatnonzero(row == worst) if worst else np.arange(row.size)
+                dn = d[n][:, cand]  # (M, candidates)
+                m, c = np.unravel_index(int(np.argmin(dn)), dn.shape)
+                k = int(cand[c])
+                motors = [int(j) + 1 for j in np.flatnonzero(cs[n, :, k] >= max(worst, 1))] if worst else []
+                entry.update({
+                    "order": float(self.mult[k]), "order_name": self._labels[k], "motor": int(m) + 1,
+                    "motors": motors or [int(m) + 1], "rpm": float(rpm[m]),
+                    "order_hz": float(rpm[m] * self._mult60[k]),
+                    "watch_rpm": self._watch_rpm(n, k, self._last_estimated),
+                    "predicted_rpm": self._predicted[n][k],
+                })
+            out.append(entry)
         return out
+
+
+@dataclass(frozen=True)
+class _Geometry:
+    s: np.ndarray
+    d: np.ndarray
+    w: np.ndarray
+    in_band: np.ndarray
+    jump: np.ndarray
+    rpm_jump: np.ndarray
+    v: np.ndarray
+    ttb: np.ndarray
+    approach: np.ndarray
+    hot: np.ndarray
+    near: np.ndarray
+    chan_state: np.ndarray
+    rise_x: np.ndarray
+    rise_n: np.ndarray
+    keep_x: np.ndarray
+    keep_n: np.ndarray
+
+
+def split_passages(events: list) -> list[list[CrossingEvent]]:
+    """The crossing events of each (mode, order) group cut into passages, in order of their end.
+
+    A passage starts when the group leaves clear, or at a new crossing after the group stepped
+    down to nearing on the way out (the order turned back while still inside the margin); it ends
+    at clear or at that nearing. Other events are ignored."""
+    open_: dict = {}
+    out: list[list[CrossingEvent]] = []
+    for e in events:
+        if not isinstance(e, CrossingEvent):
+            continue
+        key = (e.mode, e.order)
+        cur = open_.get(key)
+        if cur and e.state == "crossing" and cur[-1].state == "nearing" and cur[-1].previous == "crossing":
+            out.append(open_.pop(key))
+        open_.setdefault(key, []).append(e)
+        if e.state == "clear":
+            out.append(open_.pop(key))
+    out.extend(open_.values())
+    return out
+
+
+def _merge_into(merged: dict, b: ObservedBand) -> None:
+    key = (b.mode, b.order)
+    m = merged.get(key)
+    if m is None:
+        merged[key] = ObservedBand(b.mode, b.mode_hz, b.order, b.order_name, b.motors, b.rpm_low, b.rpm_high,
+                                   b.peak_db, b.predicted_rpm, b.passages, b.t_start_s, b.t_end_s)
+        return
+    m.motors = tuple(sorted(set(m.motors) | set(b.motors)))
+    m.rpm_low = min(m.rpm_low, b.rpm_low)
+    m.rpm_high = max(m.rpm_high, b.rpm_high)
+    m.peak_db = max(m.peak_db, b.peak_db)
+    m.passages += b.passages
+    m.t_start_s = min(m.t_start_s, b.t_start_s)
+    m.t_end_s = b.t_end_s if np.isnan(b.t_end_s) else max(m.t_end_s, b.t_end_s)

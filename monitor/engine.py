@@ -16,7 +16,7 @@ import numpy as np
 
 import firmware_protocol as fp
 
-from .assembler import DeviceChange, Gap, MotorUpdate, RpmTrack, Samples
+from .assembler import DeviceChange, EstimateTrend, Gap, MotorUpdate, RpmTrack, Samples
 from .crossing import CrossingWatch
 from .events import Notice
 from .orders import order_amplitudes, order_freqs
@@ -100,6 +100,7 @@ class Engine:
         self.stray: StrayPeakFinder | None = None
         self.estimator: RpmEstimator | None = None
         self.rpm_track: RpmTrack | None = None
+        self._est_trend = EstimateTrend()
         self._reset_views()
 
     # ---------------------------------------------------------------- set-up
@@ -183,6 +184,9 @@ class Engine:
                     self._detect(new)  # the frames before the gap first: events stay in stream order
                     if self.stft is not None:
                         self.stft.reset()
+                    if self.crossing is not None:
+                        self.crossing.break_series()
+                    self._est_trend.clear()
                     self._gap_pending = True
                     kind = {"device reboot": "reboot", "reconnect": "reconnect"}.get(it.reason, "gap")
                     msg = f"{it.reason}" + (f": {it.lost_samples} samples" if it.lost_samples else "")
@@ -303,13 +307,15 @@ class Engine:
         estimated = np.zeros(f, bool)
         if motors:
             # readings strictly before the frame's last sample: all of them arrived before it did
-            mean, latest, thr, valid = self.rpm_track.window(t0, t1 - 1.0 / fs)
+            t_end = t1 - 1.0 / fs
+            mean, latest, thr, valid = self.rpm_track.window(t0, t_end)
+            fit, slope, se, rms = self.rpm_track.trend(t_end)
             told = valid.any(axis=1)
             if not told.all():  # no telemetry in some frame: estimate the speed from the spectrum
                 for i in np.flatnonzero(~told):
                     r = self.estimator.estimate(psd_sum[i])
-                    mean[i] = r
-                    latest[i] = r
+                    mean[i] = latest[i] = r
+                    fit[i], slope[i], se[i], rms[i] = self._est_trend.add(float(t_end[i]), r)
                     estimated[i] = True
         else:
             mean = latest = thr = np.full((f, 0), np.nan)
@@ -317,7 +323,7 @@ class Engine:
         ofreq = order_freqs(mean, self.profile.blades)
         oamp, _ = order_amplitudes(psd, ofreq, spec.bin_hz, amp_factor=amp_factor, with_axis=False)
         if self.crossing is not None and motors:
-            new.extend(self.crossing.update(t1, psd_sum, latest, mean))
+            new.extend(self.crossing.update(t1, psd_sum, fit, slope, se, estimated, rms))
         if self.stray is not None:
             sel = np.arange((-first) % self._stray_every, f, self._stray_every)  # frame index a multiple
             if sel.size:

@@ -26,13 +26,12 @@ SAFETY = ("BENCH SAFETY: props off or the frame clamped; eye protection; stay cl
 
 
 class EventPrinter:
-    """Prints events as lines (crossings of several motors in one frame share a line) or JSON."""
+    """Prints events as readable lines or JSON lines, and counts them by kind."""
 
     def __init__(self, out=sys.stdout, as_json: bool = False, events_file: Path | None = None):
         self.out = out
         self.as_json = as_json
         self.events_file = open(events_file, "a", encoding="utf-8") if events_file else None  # noqa: SIM115
-        self._pending: list[CrossingEvent] = []
         self.counts: dict[str, int] = {}
 
     def __call__(self, events: list) -> None:
@@ -41,38 +40,12 @@ class EventPrinter:
             self.counts[kind] = self.counts.get(kind, 0) + 1
             if self.events_file is not None:
                 self.events_file.write(to_json_line(e) + "\n")
-            if self.as_json:
-                self.out.write(to_json_line(e) + "\n")
-                continue
-            if isinstance(e, CrossingEvent):
-                if self._pending and not self._same_group(self._pending[0], e):
-                    self._flush()
-                self._pending.append(e)
-            else:
-                self._flush()
-                self.out.write(e.text() + "\n")
-        self._flush()
+            self.out.write((to_json_line(e) if self.as_json else e.text()) + "\n")
         self.out.flush()
         if self.events_file is not None:
             self.events_file.flush()
 
-    @staticmethod
-    def _same_group(a: CrossingEvent, b: CrossingEvent) -> bool:
-        return (a.t_s, a.state, a.mode, a.order) == (b.t_s, b.state, b.mode, b.order)
-
-    def _flush(self) -> None:
-        if not self._pending:
-            return
-        first = self._pending[0]
-        line = first.text()
-        if len(self._pending) > 1:
-            motors = ",".join(str(e.motor) for e in self._pending)
-            line = line.replace(f"motor {first.motor} ", f"motors {motors} ", 1)
-        self.out.write(line + "\n")
-        self._pending = []
-
     def close(self) -> None:
-        self._flush()
         if self.events_file is not None:
             self.events_file.close()
 
@@ -114,12 +87,18 @@ def print_summary(s: dict, out, as_json: bool) -> None:
     out.write(f"crossings: {ev.get('crossing', 0)} crossing, {ev.get('nearing', 0)} nearing events, "
               f"{s['frames']} spectra\n")
     if s["bands"]:
-        out.write("bands seen (RPM ranges where an order sat on a mode):\n")
-        for b in s["bands"]:
-            out.write(f"  {b['mode']} {b['mode_hz']:.1f} Hz  {b['order_name']:20s} {b['rpm_low']:7.0f} - "
-                      f"{b['rpm_high']:7.0f} RPM  peak {b['peak_db']:+.1f} dB\n")
+        out.write("observed bands (RPM where an order was crossing a mode) and the predicted bands:\n")
+        rows = [(f"{b['mode']} {b['mode_hz']:.1f} Hz", b["order_name"],
+                 f"{b['observed_rpm'][0]:.0f}-{b['observed_rpm'][1]:.0f}",
+                 f"{b['predicted_rpm'][0]:.0f}-{b['predicted_rpm'][1]:.0f}", f"{b['peak_db']:+.1f} dB",
+                 "M" + ",".join(str(m) for m in b["motors"])) for b in s["bands"]]
+        head = ("mode", "order", "observed RPM", "predicted RPM", "peak", "motors")
+        widths = [max(len(r[c]) for r in [head, *rows]) for c in range(len(head))]
+        for r in [head, *rows]:
+            out.write("  " + "  ".join(v.ljust(w) if c < 2 else v.rjust(w)
+                                       for c, (v, w) in enumerate(zip(r, widths, strict=True))).rstrip() + "\n")
     else:
-        out.write("bands seen: none\n")
+        out.write("observed bands: none\n")
     if s["stray_peaks"]:
         out.write("stray peaks (not in the profile):\n")
         for p in s["stray_peaks"]:

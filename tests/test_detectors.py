@@ -69,49 +69,26 @@ def test_band_in_rpm_is_60_f_1_pm_zeta_over_k():
     assert m.half_power_bw_hz == pytest.approx(12.0)
 
 
-def _sweep(watch, rpm_of_t, t_end, hop=0.032, bins=1025, level=None):
+def _sweep(watch, rpm_of_t, t_end, hop=0.032, bins=1025):
+    """Frames every ``hop`` s of a flat spectrum; both motors at rpm_of_t, the slope by difference."""
     events = []
     psd = np.full((1, bins), 1e-4)
     for t in np.arange(0.0, t_end, hop):
-        now, mean = rpm_of_t(t), rpm_of_t(t - 0.128)
-        p = psd if level is None else level(t)
-        events += watch.update(np.array([t]), p, np.array([[now, now]]), np.array([[mean, mean]]))
+        now = rpm_of_t(t)
+        slope = (now - rpm_of_t(t - 0.25)) / 0.25
+        events += watch.update(np.array([t]), psd, np.array([[now, now]]), np.array([[slope, slope]]),
+                               np.array([[1.0, 1.0]]))
     return events
-
-
-@pytest.mark.parametrize("rate", [200.0, 800.0, 2000.0])
-def test_nearing_fires_before_the_band_at_sweep_rates_up_to_2000_rpm_per_s(rate):
-    profile = Profile("test", 2, "bungee", (Mode("arm flap", 150.0, 0.03, "pitch"),))
-    freqs = np.arange(1025) * (8000 / 2048)
-    watch = CrossingWatch(profile, 2, freqs, 0.032)
-    band_lo_rpm = 60 * 150 * 0.97  # order 1 enters the band here
-    t_in = (band_lo_rpm - 4000) / rate
-    ev = _sweep(watch, lambda t: 4000 + rate * max(t, 0.0), t_in + 0.2 * 9000 / rate + 1.0)
-    first_1x = [e for e in ev if e.order == 1.0 and e.motor == 1]
-    assert [e.state for e in first_1x][:2] == ["nearing", "crossing"]
-    assert first_1x[0].t_s < t_in and first_1x[0].rpm < band_lo_rpm
-    assert first_1x[0].band_rpm == pytest.approx((60 * 150 * 0.97, 60 * 150 * 1.03))
-    assert first_1x[2].state == "clear"
 
 
 def test_no_event_when_no_order_comes_near_a_mode():
     profile = Profile("test", 2, "bungee", (Mode("plate", 450.0, 0.03, "roll"),))
     freqs = np.arange(1025) * (8000 / 2048)
     watch = CrossingWatch(profile, 2, freqs, 0.032)
-    # 1x 83..97 Hz, 2x and blade-pass (2 blades) 167..193, 4x 333..387: all outside 10 % of 450 Hz
+    # 1x 83..97 Hz, 2x and blade-pass (2 blades) 167..193, 4x 333..387: all outside 10 % of 450 Hz,
+    # and at 80 RPM/s the 4x order would need far more than the 0.8 s lookahead to reach the band
     ev = _sweep(watch, lambda t: 5000 + 80 * t, 10.0)
     assert ev == []
-
-
-def test_steady_throttle_at_the_margin_does_not_chatter():
-    profile = Profile("test", 2, "bungee", (Mode("arm", 150.0, 0.03, "pitch"),))
-    freqs = np.arange(1025) * (8000 / 2048)
-    watch = CrossingWatch(profile, 2, freqs, 0.032)
-    rng = np.random.default_rng(3)
-    edge = 60 * 150 * 0.9  # 1x exactly at the 10 % margin
-    ev = _sweep(watch, lambda t: edge + 15 * rng.standard_normal() + (40 if t < 1 else 0) * (1 - t), 20.0)
-    per_channel = [e for e in ev if e.order == 1.0 and e.motor == 1]
-    assert len(per_channel) <= 2
 
 
 def _sim_engine(name, profile, seconds, telemetry=True, seed=2, script=True, overlap=0.875, detect_every_s=0.1):
@@ -135,9 +112,10 @@ def test_simulated_sweep_crosses_the_front_arm_flap_inside_its_band():
     hits = [e for e in events if getattr(e, "state", "") == "crossing" and e.mode == "arm flap, front pair"
             and e.order == 1.0]
     assert hits, "the 1x order of the sweep must cross the 118 Hz mode"
-    lo, hi = hits[0].band_rpm
-    margin = 0.10 * 60 * 118
-    assert lo - margin <= hits[0].rpm <= hi + margin
+    for h in hits:  # inside the watch band it prints: f_n (1 -+ zeta) +- (df / 2 + 0.5 % f_n)
+        assert h.watch_rpm[0] <= h.rpm <= h.watch_rpm[1]
+        w = 118.0 * 0.03 + 0.5 * 8000 / 2048 + 0.005 * 118.0
+        assert h.watch_rpm == pytest.approx((60 * (118.0 - w), 60 * (118.0 + w)))
     bands = {(b.mode, b.order) for b in eng.bands()}
     assert ("arm flap, front pair", 1.0) in bands and ("frame torsion", 1.0) in bands
 
@@ -231,7 +209,7 @@ def test_local_peaks_equal_scipy_find_peaks(seed, distance, offset):
 
 @given(st.integers(0, 2**32 - 1))
 def test_crossing_watch_in_batches_equals_frame_by_frame(seed):
-    # the watch skips runs of frames in which no state can move; fed in random batches (with
+    # the watch skips runs of frames in which nothing can rise; fed in random batches (with
     # frames of unknown RPM among them) it must give exactly the events and bands of one frame a call
     rng = np.random.default_rng(seed)
     profile = Profile("t", 2, "bungee", (Mode("arm", 150.0, 0.03), Mode("plate", 260.0, 0.05)))
@@ -240,14 +218,18 @@ def test_crossing_watch_in_batches_equals_frame_by_frame(seed):
     t = np.arange(n) * 0.032
     rpm = 6000.0 + 2500.0 * np.sin(t / 2.5)[:, None] + rng.normal(0, 30, (n, 2))
     rpm[rng.random(n) < 0.05] = np.nan
-    mean = rpm + rng.normal(0, 20, (n, 2))
+    slope = 1000.0 * np.cos(t / 2.5)[:, None] + rng.normal(0, 40, (n, 2))
+    se = rng.uniform(1.0, 30.0, (n, 2))
+    rms = rng.uniform(0.0, 200.0, (n, 2))
+    est = rng.random(n) < 0.1
     psd = rng.exponential(1e-4, (n, 513)) * (1 + 300 * np.exp(-((freqs - 150.0) / 6.0) ** 2))
 
     def run(cuts):
         w = CrossingWatch(profile, 2, freqs, 0.032)
         ev, k = [], 0
         for c in cuts:
-            ev += w.update(t[k : k + c], psd[k : k + c], rpm[k : k + c], mean[k : k + c])
+            sl = slice(k, k + c)
+            ev += w.update(t[sl], psd[sl], rpm[sl], slope[sl], se[sl], est[sl], rms[sl])
             k += c
         return [e.as_dict() for e in ev], [b.as_dict() for b in w.all_bands()]
 

@@ -327,7 +327,7 @@ def test_detector_batching_and_stream_cuts_never_change_the_events():
         return [e.as_dict() for e in events], snap.bands, snap.rpm.tolist(), eng.detected, eng.frames
 
     every_frame = run(0.0, 0)
-    assert len([e for e in every_frame[0] if e["kind"] == "crossing"]) > 5
+    assert len([e for e in every_frame[0] if e["kind"] == "crossing"]) >= 3
     kinds = {e["kind"] for e in every_frame[0]}
     assert {"reboot", "gap", "nearing", "clear"} <= kinds
     assert every_frame[3] == every_frame[4]  # after flush every frame has been seen by the detectors

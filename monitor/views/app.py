@@ -18,7 +18,7 @@ from textual.widgets import Static
 
 from ..crossing import CrossingEvent
 from ..live import LiveRun
-from ..orders import ORDER_NAMES, order_multipliers
+from ..orders import ORDER_NAMES
 from .widgets import (
     AXES,
     BASE,
@@ -62,30 +62,17 @@ HELP = """spinrig live screen keys
 press any key to close"""
 
 
-def _event_line(group: list[CrossingEvent]) -> str:
-    """Crossing events of one frame, state, mode and order (one per motor) as one line in the side
-    column's width: what, which mode, which motors and order, where."""
-    e = group[0]
-    name = e.order_name
-    order = "2bp" if name.startswith("2x blade") else "bp" if name.startswith("blade") else name
+def _short_order(name: str) -> str:
+    return "2bp" if name.startswith("2x blade") else "bp" if name.startswith("blade") else name
+
+
+def _event_line(e: CrossingEvent) -> str:
+    """One (mode, order) group's change as one line in the side column's width: what, which mode,
+    which motors and order, where, and how strong (dB over the mode's floor)."""
     word = {"crossing": "CROSS", "nearing": "NEAR", "clear": "clear"}[e.state]
-    motors = "M" + ",".join(str(x.motor) for x in group)
-    hz = sum(x.order_hz for x in group) / len(group)
-    rpm = sum(x.rpm for x in group) / len(group)
-    return f"{e.t_s:6.1f} {word:5s} {e.mode} {motors} {order} {hz:.0f} Hz ({e.mode_hz:.0f}) {rpm:.0f} rpm"
-
-
-def _grouped(events: list) -> list[list]:
-    """Consecutive crossing events of the same frame, state, mode and order, grouped."""
-    out: list[list] = []
-    for e in events:
-        if (isinstance(e, CrossingEvent) and out and isinstance(out[-1][0], CrossingEvent)
-                and (out[-1][0].t_s, out[-1][0].state, out[-1][0].mode, out[-1][0].order)
-                == (e.t_s, e.state, e.mode, e.order)):
-            out[-1].append(e)
-        else:
-            out.append([e])
-    return out
+    who = e.motor_list(("crossing",) if e.state == "crossing" else ("crossing", "nearing"))
+    return (f"{e.t_s:6.1f} {word:5s} {e.mode} {who} {_short_order(e.order_name)} {e.order_hz:.0f} Hz "
+            f"({e.mode_hz:.0f}) {e.rpm:.0f} rpm {e.over_floor_db:+.0f} dB")
 
 
 class HelpScreen(ModalScreen):
@@ -215,10 +202,9 @@ class SpinrigApp(App):
         evs = list(self.live.events)
         new = evs[self._events_seen - len(evs):] if self._events_seen > len(evs) else evs[self._events_seen:]
         self._events_seen = len(evs) if len(evs) < self.live.events.maxlen else self._events_seen
-        for group in _grouped(new[-200:])[-50:]:
-            e = group[0]
+        for e in new[-50:]:
             if isinstance(e, CrossingEvent):
-                log.write(_event_line(group), STATE_STYLES.get(e.state, BASE))
+                log.write(_event_line(e), STATE_STYLES.get(e.state, BASE))
             else:
                 log.write(e.text(), STRAY_STYLE if getattr(e, "freq_hz", None) is not None else BASE)
         if len(evs) >= self.live.events.maxlen:
@@ -251,28 +237,25 @@ class SpinrigApp(App):
         # not clear only, and two bands, so the event log keeps some rows
         compact = 0 < self.size.height < 32
         mlines: list = ["modes"]
-        modes = {m.name: m for m in self.live.profile.modes}
-        mult = order_multipliers(self.live.profile.blades)
         for st in snap.mode_states:
             mark = STATE_MARK[st["state"]]
             mlines.append([(" ", BASE), (f"{mark:8s}", STATE_STYLES[st["state"]]),
                            (f" {st['freq_hz']:6.1f} Hz {st['mode'][:18]}", BASE)])
-            mode = modes.get(st["mode"])
-            if compact and st["state"] == "clear":
+            if (compact and st["state"] == "clear") or "order" not in st:
                 continue
-            if mode is not None and snap.order_hz.size and np.any(np.isfinite(snap.order_hz)):
-                d = np.abs(np.nan_to_num(snap.order_hz, nan=1e9) - mode.freq_hz)
-                mi, k = np.unravel_index(int(np.argmin(d)), d.shape)
-                lo, hi = mode.rpm_band(float(mult[k]))
-                if compact:  # fits 28 columns: motor, order, its frequency, the RPM band on the mode
-                    mlines.append(f"   M{mi + 1} {ORDER_SHORT[k]} {snap.order_hz[mi, k]:4.0f}Hz {lo:.0f}-{hi:.0f}")
-                else:
-                    mlines.append(f"     nearest M{mi + 1} {ORDER_SHORT[k]} {snap.order_hz[mi, k]:5.0f} Hz,"
-                                  f" band {lo:.0f}-{hi:.0f} rpm")
+            lo, hi = st["watch_rpm"]
+            who = "M" + ",".join(str(m) for m in st["motors"])
+            k = _short_order(st["order_name"])
+            if compact:  # fits 28 columns: motors, order, its frequency, the watch band in RPM
+                mlines.append(f"   {who} {k} {st['order_hz']:4.0f}Hz {lo:.0f}-{hi:.0f}")
+            else:
+                lead = "" if st["state"] != "clear" else "nearest "
+                mlines.append(f"     {lead}{who} {k} {st['order_hz']:5.0f} Hz, watch {lo:.0f}-{hi:.0f} rpm")
         if not snap.mode_states:
             mlines.append(" no profile: stray peaks only")
         for b in snap.bands[: 2 if compact else 4]:
-            mlines.append(f"  band {b['mode_hz']:.0f} Hz {b['order_name'][:10]} {b['rpm_low']:.0f}-{b['rpm_high']:.0f}")
+            lo, hi = b["observed_rpm"]
+            mlines.append(f"  seen {b['mode_hz']:.0f} Hz {_short_order(b['order_name'])} {lo:.0f}-{hi:.0f} rpm")
         self._set("#modes", mlines)
         s = self.live.status()
         cap = f" | capture {s.capture} {s.capture_bytes / 1e6:.1f} MB" if s.capture else ""
