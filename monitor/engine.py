@@ -129,7 +129,7 @@ class Engine:
         freqs = self.spec.freqs
         hop_s = self.spec.hop / fs
         self.crossing = CrossingWatch(self.profile, motors, freqs, hop_s) if self.profile.modes else None
-        self.stray = StrayPeakFinder(self.profile, freqs) if self.config.stray_peaks else None
+        self.stray = StrayPeakFinder(self.profile, freqs, self.spec.nperseg / fs) if self.config.stray_peaks else None
         self.estimator = RpmEstimator(freqs, self.profile.blades, window=self.config.window)
         rate = max(1.0, float(info.motor_state_rate_hz))
         self.rpm_track = RpmTrack(motors, capacity=max(1000, int(rate * 20)), rate_hz=rate)
@@ -161,7 +161,7 @@ class Engine:
                 motors = self.info.motor_count
                 self.crossing = CrossingWatch(profile, motors, self.spec.freqs, hop_s) if profile.modes else None
                 if self.stray is not None:
-                    self.stray = StrayPeakFinder(profile, self.spec.freqs)
+                    self.stray = StrayPeakFinder(profile, self.spec.freqs, self.spec.nperseg / self.spec.fs_hz)
 
     # ---------------------------------------------------------------- feeding
 
@@ -318,7 +318,7 @@ class Engine:
                     fit[i], slope[i], se[i], rms[i] = self._est_trend.add(float(t_end[i]), r)
                     estimated[i] = True
         else:
-            mean = latest = thr = np.full((f, 0), np.nan)
+            mean = latest = thr = slope = np.full((f, 0), np.nan)
             valid = np.zeros((f, 0), bool)
         ofreq = order_freqs(mean, self.profile.blades)
         oamp, _ = order_amplitudes(psd, ofreq, spec.bin_hz, amp_factor=amp_factor, with_axis=False)
@@ -328,7 +328,8 @@ class Engine:
             sel = np.arange((-first) % self._stray_every, f, self._stray_every)  # frame index a multiple
             if sel.size:
                 rpm_sel = mean[sel] if motors else np.zeros((sel.size, 0))
-                new.extend(self.stray.update_many(t1[sel], psd[sel], rpm_sel))
+                slope_sel = slope[sel] if motors else None
+                new.extend(self.stray.update_many(t1[sel], psd[sel], rpm_sel, slope_sel))
         self.detected = first + f
         self.last_rpm = mean[-1]
         self.last_thr = thr[-1]

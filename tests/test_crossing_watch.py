@@ -273,3 +273,40 @@ def test_dwell_is_time_not_frames():
         down = [e for e in events if e.order == 1.0 and e.previous == "crossing"]
         out.append(down[0].t_s)
     assert abs(out[0] - out[1]) <= 0.07 and out[0] >= 6.0 + DWELL_S - 0.07
+
+
+DEMO_EVENT_BOUND = 180  #: measured 157 to 159 over seeds 1..3 on the demo's script (DEVELOPERS.md)
+
+
+@pytest.mark.parametrize("scenario", ["quillback7", "quillback7_braced", "wren5", "wren5_cracked_arm", "pipit3"])
+def test_simulated_scripts_speak_once_per_passage_and_cross_only_in_the_band(scenario):
+    from .conftest import judge_items, sim_items, true_profile
+
+    eng, events = judge_items(sim_items(scenario, 1), true_profile(scenario))
+    ps = split_passages(events)
+    assert ps and max(len(p) for p in ps) <= 4
+    for p in ps:
+        for e in p:
+            if e.state == "crossing":
+                assert e.watch_rpm[0] <= e.rpm <= e.watch_rpm[1]
+    # the observed bands lie inside the watch bands: 60 (f_n -+ w) / k
+    for b in eng.bands():
+        mode = next(m for m in eng.profile.modes if m.name == b.mode)
+        w = float(watch_half_band(mode.freq_hz, mode.damping_ratio, eng.spec.bin_hz))
+        lo, hi = 60 * (mode.freq_hz - w) / b.order, 60 * (mode.freq_hz + w) / b.order
+        assert lo - 1e-6 <= b.rpm_low <= b.rpm_high <= hi + 1e-6
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_the_demo_script_raises_a_bounded_number_of_events(seed):
+    # the demo: the Quillback 7 script with its shipped profile and the demo's spectrum settings
+    from monitor.demo import PROFILE
+    from monitor.profile import load_profile
+
+    from .conftest import judge_items, sim_items
+
+    _, events = judge_items(sim_items("quillback7", seed), load_profile(PROFILE))
+    ps = split_passages(events)
+    total = sum(len(p) for p in ps)
+    assert max(len(p) for p in ps) <= 4
+    assert 0 < total <= DEMO_EVENT_BOUND, total
