@@ -341,6 +341,88 @@ class RpmTrack:
             return fit, slope, se, rms
         rows = self._store[: self._n]
         t = rows[:, 0]
+        t1 = np.asarray(t1, dtype=float)
+        lo = np.searchsorted(t, t1 - span_s, side="left")
+        hi = np.searchsorted(t, t1, side="left")
+        # every window's rows gathered one after another and centred on their own means (two
+        # passes, the textbook-stable form), so a window's result depends on its rows alone,
+        # whatever other windows were asked for with it
+        cnt = hi - lo
+        ok = cnt >= 3
+        win = np.flatnonzero(ok)
+        last = rows[np.maximum(hi - 1, 0), 1 : 1 + m]
+        fit = np.where((cnt > 0)[:, None], last, np.nan)
+        if win.size == 0:
+            return fit, slope, se, rms
+        c = cnt[win]
+        starts = np.concatenate([[0], np.cumsum(c)[:-1]])
+        idx = np.repeat(lo[win] - starts, c) + np.arange(int(c.sum()))
+        tt = rows[idx, 0] - np.repeat(t1[win], c)  # time relative to the window's end
+        rr = rows[idx, 1 : 1 + m]
+        cf = c.astype(float)
+        tm = np.add.reduceat(tt, starts) / cf
+        rm = np.add.reduceat(rr, starts, axis=0) / cf[:, None]
+        dt = tt - np.repeat(tm, c)
+        dr = rr - np.repeat(rm, c, axis=0)
+        sxx = np.add.reduceat(dt * dt, starts)
+        sxy = np.add.reduceat(dt[:, None] * dr, starts, axis=0)
+        good = sxx > 0
+        with np.errstate(divide="ignore", invalid="ignore"):
+            sl = sxy / sxx[:, None]
+            res = dr - np.repeat(sl, c, axis=0) * dt[:, None]
+            s2 = np.add.reduceat(res * res, starts, axis=0) / (cf - 2)[:, None]
+            fit[win] = np.where(good[:, None], np.maximum(rm - sl * tm[:, None], 0.0), fit[win])
+            slope[win] = np.where(good[:, None], sl, np.nan)
+            rms[win] = np.where(good[:, None], np.sqrt(s2), np.nan)
+            se[win] = np.where(good[:, None], np.sqrt(s2 / sxx[:, None]), np.nan)
+        return fit, slope, se, rms
+        rows = self._store[: self._n]
+        t = rows[:, 0]
+        t1 = np.asarray(t1, dtype=float)
+        lo = np.searchsorted(t, t1 - span_s, side="left")
+        hi = np.searchsorted(t, t1, side="left")
+        n = (hi - lo).astype(float)
+        if not (n > 0).any():
+            return fit, slope, se, rms
+        # the sums of every window, each computed on its own rows (np.add.reduceat over the pairs
+        # [lo, hi)), so a window's result does not depend on which others were asked for with it
+        a0, b0 = int(lo.min()), int(hi.max())
+        sub = rows[a0:b0]
+        tt = sub[:, 0:1]
+        r = sub[:, 1 : 1 + m]
+        cols = np.empty((b0 - a0 + 1, 3 + 3 * m))
+        cols[:-1, 0] = 1.0
+        cols[:-1, 1:2] = tt
+        cols[:-1, 2:3] = tt * tt
+        cols[:-1, 3 : 3 + m] = r
+        cols[:-1, 3 + m : 3 + 2 * m] = tt * r
+        cols[:-1, 3 + 2 * m :] = r * r
+        cols[-1] = 0.0  # a zero row for windows that end with the rows
+        idx = np.empty(2 * f, dtype=np.int64)
+        idx[0::2], idx[1::2] = lo - a0, hi - a0
+        sums = np.add.reduceat(cols, idx, axis=0)[0::2]
+        sums[n == 0] = 0.0
+        cnt, st, stt = sums[:, 0:1], sums[:, 1:2], sums[:, 2:3]
+        sr, str_, srr = sums[:, 3 : 3 + m], sums[:, 3 + m : 3 + 2 * m], sums[:, 3 + 2 * m : 3 + 3 * m]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            tm = st / cnt
+            rm = sr / cnt
+            sxx = stt - st * tm
+            sxy = str_ - st * rm
+            syy = srr - sr * rm
+            sl = sxy / sxx
+            s2 = np.maximum(syy - sl * sxy, 0.0) / (cnt - 2)
+            at_t1 = rm + sl * (t1[:, None] - tm)
+        few = (n < 3)[:, None] | ~(sxx > 0)
+        last = rows[np.maximum(hi - 1, 0), 1 : 1 + m]
+        has = (n > 0)[:, None]
+        fit = np.where(few, np.where(has, last, np.nan), np.maximum(at_t1, 0.0))
+        slope = np.where(few, np.nan, sl)
+        rms = np.where(few, np.nan, np.sqrt(s2))
+        se = np.where(few, np.nan, np.sqrt(s2 / sxx))
+        return fit, slope, se, rms
+        rows = self._store[: self._n]
+        t = rows[:, 0]
         lo = np.searchsorted(t, np.asarray(t1) - span_s, side="left").tolist()
         hi = np.searchsorted(t, t1, side="left").tolist()
         for i in range(f):

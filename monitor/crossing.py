@@ -150,13 +150,19 @@ class CrossingEvent:
 
     def text(self) -> str:
         est = " est." if self.estimated else ""
+        level = (f"response {self.over_floor_db:+.1f} dB over its floor "
+                 f"({self.level_db:.1f} dB re (deg/s)^2/Hz)")
+        head = f"{self.t_s:8.2f} s  {self.state.upper():8s} {self.order_name} "
+        where = f"{self.mode} {self.mode_hz:.1f} Hz"
+        if self.state == "clear":
+            return (f"{head}of every motor away from {where} (nearest M{self.motor} at {self.order_hz:.1f} Hz, "
+                    f"{self.rpm:.0f} RPM{est}); {level}")
         who = self.motor_list(("crossing",) if self.state == "crossing" else ("crossing", "nearing"))
-        return (
-            f"{self.t_s:8.2f} s  {self.state.upper():8s} {self.order_name} of {who} at {self.order_hz:.1f} Hz "
-            f"({self.rpm:.0f} RPM{est}) on {self.mode} {self.mode_hz:.1f} Hz; watch band "
-            f"{self.watch_rpm[0]:.0f}-{self.watch_rpm[1]:.0f} RPM; {self.reason}; response "
-            f"{self.over_floor_db:+.1f} dB over its floor ({self.level_db:.1f} dB re (deg/s)^2/Hz)"
-        )
+        reason = "" if self.reason.startswith("inside the margin with the response") else f"; {self.reason}"
+        if reason == "; order inside the watch band":
+            reason = ""
+        return (f"{head}of {who} at {self.order_hz:.1f} Hz ({self.rpm:.0f} RPM{est}) on {where}; watch band "
+                f"{self.watch_rpm[0]:.0f}-{self.watch_rpm[1]:.0f} RPM{reason}; {level}")
 
 
 @dataclass
@@ -227,6 +233,7 @@ class CrossingWatch:
         self._merged_old: dict[tuple[str, float], ObservedBand] = {}
         # the last frame seen, for views: per channel offset, speed, state
         self._last = None
+        self.skip_held = True  #: pass frames in which nothing changes as a block (False: step each; tests)
         self._last_estimated = False
 
     def _setup_levels(self, freqs: np.ndarray) -> None:
@@ -322,6 +329,15 @@ class CrossingWatch:
                 if nxt.size == 0:
                     break
                 i += int(nxt[0])
+            elif self.skip_held:
+                # frames in which every group keeps its reason to stay pass as a block: only their
+                # keep times and the open bands move
+                j = self._held_until(i, g, fin)
+                if j > i:
+                    self._hold(i, j, t_s, g, rpm, lv_seq, fin)
+                    i = j
+                    if i >= nf:
+                        break
             if fin[i]:
                 self._step(i, float(t_s[i]), g, rpm[i], lv_seq[i], fl_seq[i], bool(est[i]), events)
             i += 1
@@ -379,6 +395,40 @@ class CrossingWatch:
             keep_x=(keep_band | approach).any(axis=2),
             keep_n=(in_exit | near).any(axis=2),
         )
+
+    def _held_until(self, i: int, g, fin: np.ndarray) -> int:
+        """The first frame from ``i`` in which some group could change state with the states held
+        (a rise, or a group without its reason to stay, whose dwell then runs); frames of unknown
+        speed never change anything."""
+        s = self.state[None]
+        keep = np.where(s == CROSSING, g.keep_x[i:], (s == NEARING) & g.keep_n[i:])
+        rx = g.rise_x[i:]
+        move = (rx & (s < CROSSING)) | (g.rise_n[i:] & (s == CLEAR)) | ((s > CLEAR) & ~keep & ~rx)
+        cand = move.reshape(move.shape[0], -1).any(axis=1) & fin[i:]
+        hit = np.flatnonzero(cand)
+        return i + int(hit[0]) if hit.size else len(fin)
+
+    def _hold(self, i: int, j: int, t_s, g, rpm, lv_seq, fin) -> None:
+        """Frames i..j-1, in which no group changes: keep times and open bands, as _step would."""
+        sel = np.flatnonzero(fin[i:j]) + i
+        if sel.size == 0:
+            return
+        s = self.state[None]
+        keep = np.where(s == CROSSING, g.keep_x[sel], (s == NEARING) & g.keep_n[sel]) | g.rise_x[sel]
+        seen = keep.any(axis=0)
+        last = sel.size - 1 - np.argmax(keep[::-1], axis=0)  # the last frame each group kept its reason
+        self._last_keep = np.where(seen, t_s[sel][last], self._last_keep)
+        crossing = self.state == CROSSING
+        if crossing.any():
+            inb, jmp = g.in_band[sel], g.jump[sel]
+            r = np.where(inb, rpm[sel][:, None, :, None], np.where(jmp, g.rpm_jump[sel], np.nan))
+            hit = inb | jmp
+            lo = np.where(hit, r, np.inf).min(axis=(0, 2))
+            hi = np.where(hit, r, -np.inf).max(axis=(0, 2))
+            np.minimum(self._b_lo, lo, out=self._b_lo, where=crossing)
+            np.maximum(self._b_hi, hi, out=self._b_hi, where=crossing)
+            np.maximum(self._b_peak, lv_seq[sel].max(axis=0)[:, None], out=self._b_peak, where=crossing)
+            self._b_motors |= hit.any(axis=0) & crossing[:, None, :]
 
     def _step(self, i: int, t: float, g, rpm_i, lv, fl, est: bool, events: list) -> None:
         s = self.state

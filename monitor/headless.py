@@ -90,13 +90,14 @@ def print_summary(s: dict, out, as_json: bool) -> None:
         out.write("observed bands (RPM where an order was crossing a mode) and the predicted bands:\n")
         rows = [(f"{b['mode']} {b['mode_hz']:.1f} Hz", b["order_name"],
                  f"{b['observed_rpm'][0]:.0f}-{b['observed_rpm'][1]:.0f}",
-                 f"{b['predicted_rpm'][0]:.0f}-{b['predicted_rpm'][1]:.0f}", f"{b['peak_db']:+.1f} dB",
+                 f"{b['predicted_rpm'][0]:.0f}-{b['predicted_rpm'][1]:.0f}", f"{b['peak_db']:.1f}",
                  "M" + ",".join(str(m) for m in b["motors"])) for b in s["bands"]]
-        head = ("mode", "order", "observed RPM", "predicted RPM", "peak", "motors")
+        head = ("mode", "order", "observed RPM", "predicted RPM", "peak dB*", "motors")
         widths = [max(len(r[c]) for r in [head, *rows]) for c in range(len(head))]
         for r in [head, *rows]:
             out.write("  " + "  ".join(v.ljust(w) if c < 2 else v.rjust(w)
                                        for c, (v, w) in enumerate(zip(r, widths, strict=True))).rstrip() + "\n")
+        out.write("  * highest response at the mode while crossing, dB re 1 (deg/s)^2/Hz\n")
     else:
         out.write("observed bands: none\n")
     if s["stray_peaks"]:

@@ -245,10 +245,16 @@ def test_trend_equals_numpy_polyfit():
     # error of the slope sqrt(s^2 / Sxx)
     rng = np.random.default_rng(4)
     t = np.sort(rng.uniform(0, 2.0, 400))
-    r = np.stack([5000 + 300 * t + rng.normal(0, 20, t.size), 9000 - 800 * t + rng.normal(0, 5, t.size)], axis=1)
+    check_trend_against_polyfit(t, rng)
+    check_trend_against_polyfit(t + 3598.0, rng)  # an hour into a session: no loss of precision
+
+
+def check_trend_against_polyfit(t, rng):
+    u = t - t[0]
+    r = np.stack([5000 + 300 * u + rng.normal(0, 20, t.size), 9000 - 800 * u + rng.normal(0, 5, t.size)], axis=1)
     track = RpmTrack(2, capacity=1000)
     track.add(MotorUpdate(t, r, np.zeros_like(r), np.ones(r.shape, bool)))
-    t1 = np.array([1.3, 1.9])
+    t1 = t[0] + np.array([1.3, 1.9])
     fit, slope, se, rms = track.trend(t1, span_s=0.5)
     for i, te in enumerate(t1):
         sel = (t >= te - 0.5) & (t < te)
@@ -310,3 +316,32 @@ def test_the_demo_script_raises_a_bounded_number_of_events(seed):
     total = sum(len(p) for p in ps)
     assert max(len(p) for p in ps) <= 4
     assert 0 < total <= DEMO_EVENT_BOUND, total
+
+
+@settings(max_examples=examples(30), deadline=None)
+@given(st.integers(0, 2**32 - 1))
+def test_frames_passed_as_a_block_equal_frames_stepped_one_by_one(seed):
+    # the watch passes runs of frames in which no group can change as a block; the events, bands,
+    # states and keep times must be those of stepping every frame
+    rng = np.random.default_rng(seed)
+    profile = Profile("t", 3, "bungee", (Mode("arm", 150.0, 0.03), Mode("plate", 260.0, 0.05)))
+    n = 400
+    t = 1.0 + np.arange(n) * 0.032
+    base = 6000.0 + 3500.0 * np.sin(t / rng.uniform(1.0, 4.0))
+    rpm = base[:, None] * (1 + rng.normal(0, 0.002, (n, 3)))
+    rpm[rng.random(n) < 0.03] = np.nan
+    slope = np.gradient(base, t)[:, None] + rng.normal(0, 30, (n, 3))
+    se = rng.uniform(1.0, 20.0, (n, 3))
+    psd = rng.exponential(1e-4, (n, FREQS.size)) * (1 + 100 * np.exp(-((FREQS - 150.0) / 6.0) ** 2))
+
+    def run(skip):
+        w = CrossingWatch(profile, 3, FREQS, 0.032)
+        w.skip_held = skip
+        ev = []
+        for k in range(0, n, 7):
+            sl = slice(k, k + 7)
+            ev += w.update(t[sl], psd[sl], rpm[sl], slope[sl], se[sl])
+        return [e.as_dict() for e in ev], [b.as_dict() for b in w.all_bands()], w.state.tolist(), w._last_keep.tolist()
+
+    a = run(True)
+    assert a[0] and a == run(False)
