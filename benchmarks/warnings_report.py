@@ -69,6 +69,21 @@ def crossing_stats(events: list, profile: Profile) -> dict:
     }
 
 
+def hold_changes(events: list, script) -> list[int]:
+    """Per hold of the throttle script (equal throttle at two keyframes 2 s or more apart, above
+    zero): the largest number of state changes of one (mode, order) group after the hold's first
+    second."""
+    out = []
+    for (t0, a), (t1, b) in zip(script[:-1], script[1:], strict=False):
+        if a == b and a > 0 and t1 - t0 >= 2.0:
+            per: dict = {}
+            for e in events:
+                if getattr(e, "state", None) and t0 + 1.0 < e.t_s <= t1:
+                    per[(e.mode, e.order)] = per.get((e.mode, e.order), 0) + 1
+            out.append(max(per.values(), default=0))
+    return out
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("scenarios", nargs="*")
@@ -87,7 +102,8 @@ def main(argv=None) -> int:
               f"{st['per_passage'][0]}..{st['per_passage'][1]}; nearing lead min {st['lead_min']:.2f} s, median "
               f"{st['lead_median']:.2f} s; {st['crossings']} passages crossed, "
               f"{st['crossing_without_nearing']} without nearing first; crossing first declared at most "
-              f"{d * 100:.2f} % from the mode (zeta {z * 100:.1f} %)")
+              f"{d * 100:.2f} % from the mode (zeta {z * 100:.1f} %); changes per group in the "
+              f"script's holds: {hold_changes(events, sc.script)}")
         if not a.no_stray:
             eng2, _ = run(sc, Profile(sc.airframe, sc.motors.blades), secs)
             found = [p.freq_hz for p in eng2.stray_peaks()]
