@@ -97,7 +97,7 @@ def latency(window_s: float = 8.0) -> tuple[float, float, float, float, float]:
     lat, det = [], []
     try:
         proc.stdout.readline()
-        path = proc.stdout.readline().strip()
+        path = proc.stdout.readline().split("spinrig watch ", 1)[1].split()[0]
         eng = Engine(EngineConfig(window_s=2048 / 8000, overlap=0.875), load_profile(PROFILE))
         link = Link(path)
         link.start()
@@ -136,7 +136,7 @@ def replay_speed(minutes: float) -> tuple[float, float]:
     stream = SimStream(load_scenario("quillback7"), DeviceOptions(stream_at_boot=True, seed=8), FaultPlan(),
                        StreamOptions(realtime=False))
     with tempfile.TemporaryDirectory() as d:
-        path = Path(d) / "ten.spcap"
+        path = Path(d) / "ten.spinrec"
         clock = [0.0]
         w = CaptureWriter(path, {"port": "sim://quillback7"}, clock=lambda: clock[0])
         while stream.time_s < seconds:

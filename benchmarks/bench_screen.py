@@ -35,7 +35,7 @@ def _sim() -> tuple[subprocess.Popen, str]:
     proc = subprocess.Popen([sys.executable, "-m", "monitor", "sim", "quillback7", "--duration", "600"],
                             stdout=subprocess.PIPE, text=True)
     proc.stdout.readline()
-    return proc, proc.stdout.readline().strip()
+    return proc, proc.stdout.readline().split("spinrig watch ", 1)[1].split()[0]
 
 
 def _measure(args: list[str], seconds: float, cols: int = 160, rows: int = 48) -> tuple[float, float]:

@@ -45,7 +45,7 @@ def realtime_cpu(window_s: float) -> tuple[float, int]:
     )
     try:
         proc.stdout.readline()
-        path = proc.stdout.readline().strip()
+        path = proc.stdout.readline().split("spinrig watch ", 1)[1].split()[0]
         port = serial.Serial(path, timeout=0.05)
         c0, t0 = _cpu_s(proc.pid), time.monotonic()
         got = 0

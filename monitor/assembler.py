@@ -25,6 +25,17 @@ import firmware_protocol as fp
 
 U32 = 1 << 32
 HALF = 1 << 31
+#: holes in the sample series up to this long are filled in place (linear between their ends,
+#: marked not valid) instead of breaking the series: a hole of 50 ms in a 256 ms Hann window costs a
+#: tone about a fifth of its power at worst and raises the floor by the hole's share of the window
+#: energy (measured in tests/test_field_faults.py); longer holes restart the spectra
+BRIDGE_MAX_S = 0.05
+#: the device clock's drift is a least-squares slope of device time against host time over at
+#: least this much host time (read latency scatters single reads by milliseconds)
+DRIFT_MIN_SPAN_S = 10.0
+#: a drift beyond this is not a clock: the stream is not in real time (a replay, a fast simulation)
+DRIFT_MAX_PPM = 20000.0
+
 #: readings a motor's speed trend is fitted over (s): long enough that the simulator's speed jitter
 #: (0.2 %, correlated over 50 ms) leaves a slope error near 30 RPM/s at 7000 RPM, short enough to
 #: follow a sweep that starts or stops
@@ -38,6 +49,7 @@ class Samples:
     t0_s: float  #: session time of the first sample
     fs_hz: float
     dps: np.ndarray  #: (n, 3) float32, roll/pitch/yaw in deg/s (FRD)
+    valid: np.ndarray | None = None  #: (n,) bool, False where a short hole was filled; None: all real
 
 
 @dataclass(frozen=True)
@@ -69,7 +81,10 @@ class AssemblerStats:
     reboots: int = 0
     segments: int = 0
     orphan_blocks: int = 0  #: gyro blocks before any DEVICE_INFO (dropped: no sensitivity yet)
+    holes_bridged: int = 0  #: short holes filled in place (the series goes on; spectra over them flagged)
+    samples_filled: int = 0  #: samples those fills stand in for (also counted in samples_lost)
     drift_ppm: float | None = None  #: device clock against the host clock, once measurable
+    drift_note: str = ""  #: why there is no drift figure yet, when there is none
 
 
 @dataclass
@@ -109,7 +124,9 @@ class Assembler:
         self._boot_id: int | None = None
         self._last_sample_s = 0.0
         self._last_host_s: float | None = None
-        self._drift_ref: tuple[float, float] | None = None  # (host s, session s) early in the run
+        self._drift = _DriftFit()
+        self._last_dev_s: float | None = None  #: session time of the newest block by the device clock
+        self._last_dps = np.zeros(3, np.float32)  #: the newest sample, for filling a short hole
         self._scale = 1.0
         self._signs = np.ones(3, dtype=np.float32)
         self._fs = 0.0
@@ -141,7 +158,7 @@ class Assembler:
                     self._status(m, out, host_s)
                 out.append(item)
         if host_s is not None:
-            self._drift(host_s)
+            self._track_drift(host_s)
             self._last_host_s = host_s
         return out
 
@@ -172,7 +189,8 @@ class Assembler:
         self._tb = _TimeBase(ref_s=self._last_sample_s + elapsed)
         self._expect_seq = None
         self._pending_break = ("device reboot", 0)
-        self._drift_ref = None
+        self._drift = _DriftFit()
+        self._last_dev_s = None
         out.append(Gap(self._last_sample_s, "device reboot"))
 
     def _gyro(self, batch: fp.GyroBatch, out: list) -> None:
@@ -192,27 +210,50 @@ class Assembler:
         if self._pending_break is not None:
             breaks.add(0)
         bounds = sorted(breaks | {0, len(seq)})
+        fill_max = max(1, int(BRIDGE_MAX_S * self._fs))
         for a, b in zip(bounds[:-1], bounds[1:], strict=True):
+            block = dps[starts[a] : starts[b]]
             if a in breaks:
                 if self._pending_break is not None:
                     self._pending_break = None  # its Gap went out when the break was learnt
+                    self._new_segment(float(times[a]))
                 elif diff[a] >= HALF:  # the counter went backwards: a reboot nobody announced
                     self.stats.reboots += 1
                     out.append(Gap(self._last_sample_s, "device reboot"))
                     self._tb = _TimeBase(ref_s=self._last_sample_s)
+                    self._drift = _DriftFit()
                     times[a:] = self._tb.to_session(batch.t_us[a:])
+                    self._new_segment(float(times[a]))
                 else:
                     lost = int(diff[a])
                     self.stats.samples_lost += lost
-                    out.append(Gap(self._last_sample_s, "samples lost", lost))
-                self._new_segment(float(times[a]))
-            block = dps[starts[a] : starts[b]]
+                    if lost <= fill_max and self._segment >= 0:
+                        self._fill(lost, block[0] if block.shape[0] else self._last_dps, out)
+                    else:
+                        out.append(Gap(self._last_sample_s, "samples lost", lost))
+                        self._new_segment(float(times[a]))
             t0 = self._seg_t0 + self._seg_index / self._fs
             out.append(Samples(self._segment, self._seg_index, t0, self._fs, block))
             self._seg_index += block.shape[0]
             self.stats.samples += block.shape[0]
             self._last_sample_s = self._seg_t0 + self._seg_index / self._fs
+            if block.shape[0]:
+                self._last_dps = block[-1].copy()
         self._expect_seq = int((seq[-1] + counts[-1]) % U32)
+        self._last_dev_s = float(times[-1])
+
+    def _fill(self, n: int, after: np.ndarray, out: list) -> None:
+        """A short hole of ``n`` samples: filled in place, linear from the last sample before it to
+        the first after it, marked not valid, so the series (and its spectra) go on."""
+        ramp = (np.arange(1, n + 1, dtype=np.float32) / np.float32(n + 1))[:, None]
+        filled = self._last_dps[None, :] + (after[None, :] - self._last_dps[None, :]) * ramp
+        t0 = self._seg_t0 + self._seg_index / self._fs
+        out.append(Samples(self._segment, self._seg_index, t0, self._fs, filled.astype(np.float32),
+                           np.zeros(n, bool)))
+        self._seg_index += n
+        self._last_sample_s = self._seg_t0 + self._seg_index / self._fs
+        self.stats.holes_bridged += 1
+        self.stats.samples_filled += n
 
     def _new_segment(self, t0: float) -> None:
         self._segment += 1
@@ -242,18 +283,53 @@ class Assembler:
         valid = np.array([[bool(m.flags & fp.MotorFlags.TELEMETRY_VALID) for m in ms.motors]])
         out.append(MotorUpdate(t, rpm, thr, valid))
 
-    def _drift(self, host_s: float) -> None:
-        if self._fs <= 0 or self.stats.samples == 0:
+    def _track_drift(self, host_s: float) -> None:
+        if self._last_dev_s is None:
             return
-        now = (host_s, self._last_sample_s)
-        if self._drift_ref is None:
-            self._drift_ref = now
+        self._drift.add(host_s, self._last_dev_s)
+        span = self._drift.span_s
+        if span < DRIFT_MIN_SPAN_S:
+            self.stats.drift_note = f"measuring: {span:.0f} of {DRIFT_MIN_SPAN_S:.0f} s of device time seen"
             return
-        dh = now[0] - self._drift_ref[0]
-        if dh >= 5.0:
-            ratio = (now[1] - self._drift_ref[1]) / dh
-            ppm = (ratio - 1.0) * 1e6
-            self.stats.drift_ppm = ppm if abs(ppm) < 5000 else None  # not real time (replay, fast sim)
+        ppm = self._drift.ppm()
+        if ppm is None or abs(ppm) > DRIFT_MAX_PPM:
+            self.stats.drift_ppm = None
+            self.stats.drift_note = "the stream is not in real time (a replay or a fast simulation)"
+        else:
+            self.stats.drift_ppm = ppm
+            self.stats.drift_note = ""
+
+
+class _DriftFit:
+    """Least-squares slope of device time against host time (running sums, bounded memory),
+    each relative to the first pair so the sums stay well conditioned over hours."""
+
+    def __init__(self):
+        self.ref: tuple[float, float] | None = None
+        self.n = 0
+        self.sx = self.sy = self.sxx = self.sxy = 0.0
+        self.last_x = 0.0
+
+    def add(self, host_s: float, dev_s: float) -> None:
+        if self.ref is None:
+            self.ref = (host_s, dev_s)
+        x, y = host_s - self.ref[0], dev_s - self.ref[1]
+        self.n += 1
+        self.sx += x
+        self.sy += y
+        self.sxx += x * x
+        self.sxy += x * y
+        self.last_x = x
+
+    @property
+    def span_s(self) -> float:
+        return self.last_x
+
+    def ppm(self) -> float | None:
+        den = self.n * self.sxx - self.sx * self.sx
+        if self.n < 3 or den <= 0:
+            return None
+        return ((self.n * self.sxy - self.sx * self.sy) / den - 1.0) * 1e6
 
 
 class RpmTrack:

@@ -20,6 +20,31 @@ a current-limited supply and a physical kill switch within reach.
 """
 
 
+def bounded(kind, lo, hi, lo_open=False, what="value"):
+    """An argparse type: a number of ``kind`` in [lo, hi] ((lo, hi] with ``lo_open``); anything
+    else is a one-line usage error (exit 2) naming the bounds."""
+
+    def parse(text: str):
+        try:
+            v = kind(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not a{'n integer' if kind is int else ' number'}") from None
+        if v != v or v < lo or v > hi or (lo_open and v == lo):
+            left = "(" if lo_open else "["
+            raise argparse.ArgumentTypeError(f"{text} is outside {left}{lo:g}, {hi:g}] ({what})")
+        return v
+
+    return parse
+
+
+WINDOW_S = bounded(float, 0.016, 4.0, what="spectrum window, s")
+OVERLAP = bounded(float, 0.0, 0.9, what="overlap fraction")
+DURATION_S = bounded(float, 0.0, 1e6, lo_open=True, what="seconds")
+BAUD = bounded(int, 300, 12_000_000, what="baud")
+SUPPLY_V = bounded(float, 0.0, 100.0, what="volts")
+SPEED = bounded(float, 0.0, 1000.0, lo_open=True, what="times real time")
+
+
 def _add_demo(sub) -> None:
     p = sub.add_parser(
         "demo",
@@ -28,7 +53,8 @@ def _add_demo(sub) -> None:
         epilog="example:\n  spinrig demo\n  spinrig demo --seconds 5",
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("--seconds", type=float, help="stop after S seconds (default: the whole 75 s throttle script)")
+    p.add_argument("--seconds", type=bounded(float, 0.0, 3600.0, lo_open=True, what="seconds"),
+                   help="stop after S seconds, 0 < S <= 3600 (default: the whole 75 s throttle script)")
     p.add_argument("--seed", type=int, default=1, help="simulator seed (default 1)")
     p.add_argument("--headless", action="store_true", help="no screen: print events (the default without a terminal)")
     p.set_defaults(func=lambda a: __import__("monitor.demo", fromlist=["run"]).run(a))
@@ -49,8 +75,9 @@ def _add_run_options(p) -> None:
     p.add_argument("--profile", metavar="FILE", help="frame profile (TOML) of the airframe's known modes")
     p.add_argument("--json", action="store_true", help="print events and the summary as JSON lines")
     p.add_argument("--events", metavar="FILE.jsonl", help="also append every event to this file as JSON lines")
-    p.add_argument("--window-s", type=float, default=0.256, help="spectrum window length, s (default 0.256)")
-    p.add_argument("--overlap", type=float, default=0.75, help="window overlap fraction (default 0.75)")
+    p.add_argument("--window-s", type=WINDOW_S, default=0.256,
+                   help="spectrum window length, 0.016 to 4 s (default 0.256; at least 16 samples)")
+    p.add_argument("--overlap", type=OVERLAP, default=0.75, help="window overlap fraction, 0 to 0.9 (default 0.75)")
 
 
 def _add_watch(sub) -> None:
@@ -61,7 +88,7 @@ def _add_watch(sub) -> None:
         "crosses a frame mode. PORT is a device path or a pyserial URL (socket://, rfc2217://, loop://, sim://).",
         epilog="""examples:
   spinrig watch /dev/ttyACM0 --profile quillback7.toml --headless
-  spinrig watch socket://127.0.0.1:5760 --headless --capture run1.spcap --mounting bungee --props on
+  spinrig watch socket://127.0.0.1:52817 --headless --capture run1.spinrec --mounting bungee --props on
   spinrig watch sim://quillback7 --profile monitor/profiles/quillback7.toml --headless --duration 30
   spinrig watch run1.csv --headless --json
 
@@ -70,22 +97,28 @@ def _add_watch(sub) -> None:
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("port", metavar="PORT", help="device path, pyserial URL, or a .csv file")
-    p.add_argument("--baud", type=int, default=921_600, help="baud rate (default 921600; ignored by USB CDC)")
+    p.add_argument("--baud", type=BAUD, default=921_600,
+                   help="baud rate, 300 to 12000000 (default 921600; ignored by USB CDC)")
     p.add_argument("--headless", action="store_true", help="no screen: print events and a summary")
-    p.add_argument("--capture", metavar="FILE.spcap", help="record the raw stream losslessly to FILE")
-    p.add_argument("--duration", type=float, metavar="S", help="stop after S seconds")
+    p.add_argument("--capture", metavar="FILE.spinrec", help="record the raw stream losslessly to FILE")
+    p.add_argument("--duration", type=DURATION_S, metavar="S", help="stop after S seconds (S > 0)")
     p.add_argument("--mounting", choices=["bungee", "foam", "clamp", "hand"], help="how the airframe is held")
     p.add_argument("--props", choices=["on", "off"], help="props on or off for this run")
-    p.add_argument("--supply-v", type=float, metavar="V", help="supply voltage, V")
+    p.add_argument("--supply-v", type=SUPPLY_V, metavar="V", help="supply voltage, 0 to 100 V")
     p.add_argument("--note", help="a free note stored in the capture")
     _add_run_options(p)
     p.set_defaults(func=_watch)
 
 
+def _screen_possible() -> bool:
+    """The screen needs a terminal on both ends; without one (a pipe, a file, CI) lines are printed."""
+    return sys.stdout.isatty() and sys.stdin.isatty()
+
+
 def _watch(args) -> int:
     from .headless import run_watch
 
-    if not args.headless:
+    if not args.headless and _screen_possible():
         return run_screen(args)
     return run_watch(args)
 
@@ -103,6 +136,9 @@ def run_screen(args, replay: bool = False) -> int:
     except ProfileError as exc:
         print(f"spinrig: {exc}", file=sys.stderr)
         return 2
+    from .headless import warn_profile
+
+    warn_profile(profile, bool(args.profile))
     source = args.file if replay else args.port
     save_to = None if getattr(args, "note", None) == "demo" else args.profile  # the demo never rewrites its profile
     run = LiveRun(source, profile, profile_path=save_to, baud=getattr(args, "baud", 921_600),
@@ -114,37 +150,52 @@ def run_screen(args, replay: bool = False) -> int:
         except Exception as exc:  # noqa: BLE001 - a port that does not open: one line
             print(f"spinrig: cannot open {source}: {exc}", file=sys.stderr)
             return 2
+    capture = getattr(args, "capture", None)
+    if capture and not replay:
+        note = run.start_capture(capture)  # recording starts at once, as headless
+        if not note.startswith("capturing"):
+            run.stop()
+            print(f"spinrig: {note}", file=sys.stderr)
+            return 1
     from .views.app import SpinrigApp
 
-    app = SpinrigApp(run, capture_path=getattr(args, "capture", None), start=replay,
-                     duration=getattr(args, "duration", None))
+    app = SpinrigApp(run, capture_path=capture, start=replay, duration=getattr(args, "duration", None))
+    import signal
+
+    def on_term(*_):  # SIGTERM: leave the screen (the terminal is restored), close the capture, exit 143
+        app.call_later(app.exit, 143)
+
+    old = signal.signal(signal.SIGTERM, on_term)
+    code = 0
     try:
-        app.run()
+        code = app.run() or 0
     except KeyboardInterrupt:
-        pass
+        code = 130
     finally:
+        signal.signal(signal.SIGTERM, old)
         run.stop()
-    return 0
+    return int(code)
 
 
 def _add_replay(sub) -> None:
     p = sub.add_parser(
         "replay",
         help="run a capture through the same pipeline as a live run",
-        description="Replay a capture (.spcap) through the live pipeline: the same spectra and events.",
-        epilog="examples:\n  spinrig replay run1.spcap --headless\n"
-        "  spinrig replay run1.spcap --headless --json --speed 4",
+        description="Replay a capture (.spinrec) through the live pipeline: the same spectra and events.",
+        epilog="examples:\n  spinrig replay run1.spinrec --headless\n"
+        "  spinrig replay run1.spinrec --headless --json --speed 4",
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("file", metavar="FILE")
     p.add_argument("--headless", action="store_true", help="no screen: print events and a summary")
-    p.add_argument("--speed", type=float, help="pace the replay: 1 is real time (default: as fast as possible)")
+    p.add_argument("--speed", type=SPEED, help="pace the replay: 1 is real time, up to 1000 (default: as fast as "
+                   "possible)")
     _add_run_options(p)
     p.set_defaults(func=_replay)
 
 
 def _replay(args) -> int:
-    if args.headless:
+    if args.headless or not _screen_possible():
         from .headless import run_replay
 
         return run_replay(args)
@@ -156,7 +207,7 @@ def _add_export(sub) -> None:
         "export",
         help="write a capture's samples and motor RPM as CSV or NPZ",
         description="Export the gyro samples (deg/s) and motor RPM of a capture.",
-        epilog="examples:\n  spinrig export run1.spcap --csv\n  spinrig export run1.spcap --npz -o run1.npz",
+        epilog="examples:\n  spinrig export run1.spinrec --csv\n  spinrig export run1.spinrec --npz -o run1.npz",
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("file", metavar="FILE")
@@ -171,16 +222,21 @@ def _export(args) -> int:
     import sys
 
     from .capture import CaptureError
-    from .export import export
+    from .export import NoSamplesError, export
 
     try:
-        out = export(args.file, args.fmt, args.output)
+        out, cut = export(args.file, args.fmt, args.output)
     except CaptureError as exc:
         print(f"spinrig: {exc}", file=sys.stderr)
         return 2
-    except OSError as exc:
-        print(f"spinrig: {args.output or args.file}: {exc.strerror or exc}", file=sys.stderr)
+    except NoSamplesError as exc:
+        print(f"spinrig: {exc}", file=sys.stderr)
         return 1
+    except OSError as exc:
+        print(f"spinrig: {args.output or args.file}: {exc.strerror or exc}; nothing written", file=sys.stderr)
+        return 1
+    if cut:
+        print(f"spinrig: note: {cut}", file=sys.stderr)
     print(f"wrote {out}")
     return 0
 

@@ -9,18 +9,18 @@ by how often anyone looks at it; views read :meth:`Engine.snapshot`, an immutabl
 from __future__ import annotations
 
 import threading
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import NamedTuple
 
 import numpy as np
 
 import firmware_protocol as fp
 
-from .assembler import DeviceChange, EstimateTrend, Gap, MotorUpdate, RpmTrack, Samples
+from .assembler import BRIDGE_MAX_S, DeviceChange, EstimateTrend, Gap, MotorUpdate, RpmTrack, Samples
 from .crossing import CrossingWatch
 from .events import Notice
 from .orders import order_amplitudes, order_freqs
-from .profile import Profile
+from .profile import Profile, profile_warnings
 from .ring import RingBuffer
 from .rpm_estimate import RpmEstimator
 from .spectra import RollingSTFT, SpectrumConfig
@@ -74,6 +74,8 @@ class Snapshot:
     mode_states: list
     frames: int
     waterfall_total: int  #: rows ever written (a view asks for rows newer than it has)
+    filled: float = 0.0  #: share of the newest frame's samples filled over a bridged hole (flag)
+    frames_filled: int = 0
     bands: list = field(default_factory=list)
 
 
@@ -96,6 +98,11 @@ class Engine:
         self._unfolded: list = []  #: frame batches not yet in the average, peak hold and waterfall
         self._carry: list = []  #: events of a flush outside feed(), handed out by the next call
         self.detected = 0  #: frames the detectors have seen
+        self.frames_filled = 0  #: frames over a bridged hole (their spectra are flagged)
+        self._frames_at_gap = 0
+        self._starved: list[float] = []
+        self._starve_said = False
+        self.last_filled = 0.0  #: share of the newest frame's samples that were filled
         self.crossing: CrossingWatch | None = None
         self.stray: StrayPeakFinder | None = None
         self.estimator: RpmEstimator | None = None
@@ -128,7 +135,7 @@ class Engine:
         self.stft = RollingSTFT(self.spec)
         freqs = self.spec.freqs
         hop_s = self.spec.hop / fs
-        self.crossing = CrossingWatch(self.profile, motors, freqs, hop_s) if self.profile.modes else None
+        self.crossing = self._watch(self.profile, motors, freqs, hop_s)
         self.stray = StrayPeakFinder(self.profile, freqs, self.spec.nperseg / fs) if self.config.stray_peaks else None
         self.estimator = RpmEstimator(freqs, self.profile.blades, window=self.config.window)
         rate = max(1.0, float(info.motor_state_rate_hz))
@@ -141,6 +148,14 @@ class Engine:
         self.waterfall_t = RingBuffer(self.config.waterfall_rows, (2,))  # (time s, gap-before flag)
         self.history = RingBuffer(int(self.config.history_s * fs), (3,), dtype=np.float32)
         self._gap_pending = True
+
+    def _watch(self, profile: Profile, motors: int, freqs: np.ndarray, hop_s: float) -> CrossingWatch | None:
+        """The crossing watch over the modes the gyro can see (below its Nyquist frequency)."""
+        nyq = float(freqs[-1])
+        seen = tuple(m for m in profile.modes if m.freq_hz * (1 + m.damping_ratio) < nyq)
+        if not seen:
+            return None
+        return CrossingWatch(replace(profile, modes=seen), motors, freqs, hop_s)
 
     def reconfigure(self, config: EngineConfig) -> None:
         """New window length, overlap or window: spectra restart (the waterfall is cleared)."""
@@ -159,7 +174,7 @@ class Engine:
             if self.info is not None and self.spec is not None:
                 hop_s = self.spec.hop / self.spec.fs_hz
                 motors = self.info.motor_count
-                self.crossing = CrossingWatch(profile, motors, self.spec.freqs, hop_s) if profile.modes else None
+                self.crossing = self._watch(profile, motors, self.spec.freqs, hop_s)
                 if self.stray is not None:
                     self.stray = StrayPeakFinder(profile, self.spec.freqs, self.spec.nperseg / self.spec.fs_hz)
 
@@ -191,6 +206,7 @@ class Engine:
                     kind = {"device reboot": "reboot", "reconnect": "reconnect"}.get(it.reason, "gap")
                     msg = f"{it.reason}" + (f": {it.lost_samples} samples" if it.lost_samples else "")
                     new.append(Notice(kind, it.t_s, msg, {"lost_samples": it.lost_samples}))
+                    self._starving(it.t_s, new)
                 elif isinstance(it, DeviceChange):
                     self._detect(new)
                     self._configure(it.info)
@@ -199,10 +215,29 @@ class Engine:
                     text = (f"{i.board_id or 'device'}: gyro {i.sample_rate_hz:g} Hz, {float(i.counts_per_dps):g} "
                             f"counts per deg/s, {filt}, {i.motor_count} motors, {i.pole_pairs} pole pairs")
                     new.append(Notice("device", self._last_t, text, {"reboot": it.reboot}))
+                    for w in profile_warnings(self.profile, i.sample_rate_hz)[0 if self.profile.modes else 1:]:
+                        new.append(Notice("profile", self._last_t, w))
             if self._pending and self._last_sample_t - self._pending[0].t1[0] >= self.config.detect_every_s:
                 self._detect(new)
             self._keep(new)
         return new
+
+    def _starving(self, t_s: float, new: list) -> None:
+        """Gaps that come faster than a window fills leave no spectra: say so once, with the rate."""
+        if self.frames > self._frames_at_gap:
+            self._starved = []
+            self._starve_said = False
+        self._frames_at_gap = self.frames
+        self._starved.append(t_s)
+        del self._starved[:-10]
+        if len(self._starved) >= 4 and not self._starve_said and self.spec is not None:
+            self._starve_said = True
+            every = (self._starved[-1] - self._starved[0]) / (len(self._starved) - 1)
+            need_ms = self.spec.nperseg / self.spec.fs_hz * 1000
+            new.append(Notice("gap", t_s, f"no spectra: the stream breaks every {every * 1000:.0f} ms on average; a "
+                                          f"spectrum needs {need_ms:.0f} ms unbroken (holes up to "
+                                          f"{BRIDGE_MAX_S * 1000:.0f} ms are bridged): check the cable, the baud rate "
+                                          "and the device's load", {"no_spectra": True}))
 
     def flush(self) -> list:
         """Run the detectors over every frame still waiting (end of a stream); returns the events."""
@@ -228,7 +263,7 @@ class Engine:
                 self.stft.reset()
         self.history.append(s.dps)
         self._last_t = self._last_sample_t = s.t0_s + s.dps.shape[0] / s.fs_hz
-        fb = self.stft.push(s.dps)
+        fb = self.stft.push(s.dps, s.valid)
         if fb is not None:
             self._frames(fb, new)
 
@@ -244,6 +279,11 @@ class Engine:
         self._pending.append(_Waiting(t0, t1, psd, fb.amp_factor, self.frames))
         self.frames += t0.shape[0]
         self.last_psd = psd[-1]
+        if fb.filled is not None:
+            self.frames_filled += int(np.count_nonzero(fb.filled))
+            self.last_filled = float(fb.filled[-1])
+        else:
+            self.last_filled = 0.0
         self._amp_factor = fb.amp_factor  # amplitude of the newest frame is derived when a view asks
         self._last_t = float(t1[-1])
         if self.config.detect_every_s <= 0:
@@ -368,6 +408,8 @@ class Engine:
                 order_amp=self.last_order_amp.copy(),
                 mode_states=self.crossing.mode_states() if self.crossing else [],
                 frames=self.frames,
+                filled=self.last_filled,
+                frames_filled=self.frames_filled,
                 waterfall_total=self.waterfall.total if self.waterfall is not None else 0,
                 bands=[b.as_dict() for b in self.crossing.all_bands()] if self.crossing else [],
             )

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import os
 from pathlib import Path
 
 import numpy as np
@@ -11,6 +12,7 @@ import firmware_protocol as fp
 
 from .assembler import Assembler, MotorUpdate, Samples
 from .capture import read_capture
+from .session import device_items
 
 
 def decode_capture(path) -> dict:
@@ -20,11 +22,20 @@ def decode_capture(path) -> dict:
     asm = Assembler()
     t_parts, g_parts, mt, mr, mthr = [], [], [], [], []
     for ch in contents.chunks:
-        items = asm.mark_reconnect() if ch.kind == "G" else asm.feed(dec.feed(ch.payload), ch.host_s)
         if ch.kind == "G":
+            items = asm.mark_reconnect()
             dec.reset()
+        elif ch.kind == "X":
+            dec.reset()
+            continue
+        elif ch.kind == "I":
+            items = asm.feed(device_items(ch.payload, asm), ch.host_s)
+        else:
+            items = asm.feed(dec.feed(ch.payload), ch.host_s)
         for it in items:
             if isinstance(it, Samples):
+                if it.valid is not None:  # a filled hole: the export keeps real samples only
+                    continue
                 n = it.dps.shape[0]
                 t_parts.append(it.t0_s + np.arange(n) / it.fs_hz)
                 g_parts.append(it.dps)
@@ -44,6 +55,10 @@ def decode_capture(path) -> dict:
     }
 
 
+class NoSamplesError(ValueError):
+    """A capture that holds no gyro sample that can be decoded (nothing is written)."""
+
+
 def rpm_at(sample_t: np.ndarray, rpm_t: np.ndarray, rpm: np.ndarray) -> np.ndarray:
     """The latest motor reading at each sample time (the first reading before it arrives)."""
     if rpm_t.size == 0:
@@ -55,23 +70,41 @@ def rpm_at(sample_t: np.ndarray, rpm_t: np.ndarray, rpm: np.ndarray) -> np.ndarr
     return rv[np.clip(idx, 0, len(rt) - 1)]
 
 
-def export(path, fmt: str, out_path: str | None = None) -> Path:
+def export(path, fmt: str, out_path: str | None = None) -> tuple[Path, str | None]:
+    """Write the export atomically (a temporary file beside the target, renamed over it when
+    complete: a full disk leaves no partial file). Returns (target, what the capture could not
+    give, or None)."""
     d = decode_capture(path)
+    if d["time_s"].size == 0:
+        why = d["cut"] or "no DEVICE_INFO and no gyro block in it"
+        raise NoSamplesError(f"{path}: no gyro samples could be decoded ({why}); nothing written")
     src = Path(path)
     target = Path(out_path) if out_path else src.with_suffix(".csv" if fmt == "csv" else ".npz")
-    if fmt == "npz":
-        np.savez_compressed(target, time_s=d["time_s"], gyro_dps=d["gyro_dps"], rpm_time_s=d["rpm_time_s"],
-                            rpm=d["rpm"], throttle=d["throttle"], meta=json.dumps(d["meta"], default=str))
-        return target
-    rpm = rpm_at(d["time_s"], d["rpm_time_s"], d["rpm"])
-    motors = rpm.shape[1]
-    header = "time_s,gyro_roll_dps,gyro_pitch_dps,gyro_yaw_dps" + "".join(f",rpm_{k + 1}" for k in range(motors))
-    if d["time_s"].size:
-        table = np.column_stack([d["time_s"], d["gyro_dps"].astype(np.float64), rpm])
-    else:
-        table = np.zeros((0, 4 + motors))
-    fmt_cols = ["%.6f", "%.4f", "%.4f", "%.4f"] + ["%.1f"] * motors
-    with open(target, "w", encoding="utf-8") as f:
-        f.write(header + "\n")
-        np.savetxt(f, table, fmt=fmt_cols, delimiter=",")
-    return target
+    tmp = target.with_name(target.name + ".part")
+    try:
+        if fmt == "npz":
+            with open(tmp, "wb") as f:
+                np.savez_compressed(f, time_s=d["time_s"], gyro_dps=d["gyro_dps"], rpm_time_s=d["rpm_time_s"],
+                                    rpm=d["rpm"], throttle=d["throttle"], meta=json.dumps(d["meta"], default=str))
+                f.flush()
+                os.fsync(f.fileno())
+        else:
+            rpm = rpm_at(d["time_s"], d["rpm_time_s"], d["rpm"])
+            motors = rpm.shape[1]
+            header = "time_s,gyro_roll_dps,gyro_pitch_dps,gyro_yaw_dps" + "".join(
+                f",rpm_{k + 1}" for k in range(motors))
+            if d["time_s"].size:
+                table = np.column_stack([d["time_s"], d["gyro_dps"].astype(np.float64), rpm])
+            else:
+                table = np.zeros((0, 4 + motors))
+            fmt_cols = ["%.6f", "%.4f", "%.4f", "%.4f"] + ["%.1f"] * motors
+            with open(tmp, "w", encoding="utf-8") as f:
+                f.write(header + "\n")
+                np.savetxt(f, table, fmt=fmt_cols, delimiter=",")
+                f.flush()
+                os.fsync(f.fileno())
+        tmp.replace(target)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    return target, d["cut"]

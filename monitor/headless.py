@@ -18,7 +18,7 @@ from .crossing import CrossingEvent
 from .engine import Engine, EngineConfig
 from .events import Notice, to_json_line
 from .link import Link
-from .profile import Profile, ProfileError, load_profile
+from .profile import Profile, ProfileError, load_profile, profile_warnings
 from .session import CaptureReplay, Session
 
 SAFETY = ("BENCH SAFETY: props off or the frame clamped; eye protection; stay clear of the prop arc; "
@@ -110,9 +110,16 @@ def print_summary(s: dict, out, as_json: bool) -> None:
 
 
 def load_profile_arg(path: str | None) -> Profile:
+    """The ``--profile`` of a run (a file, or a bundled airframe name); none: an empty profile."""
     if not path:
         return Profile()
     return load_profile(path)
+
+
+def warn_profile(profile: Profile, given: bool) -> None:
+    """One line on stderr for a profile given but without modes."""
+    if given and not profile.modes:
+        print(f"spinrig: warning: {profile_warnings(profile)[0]}", file=sys.stderr)
 
 
 def engine_config(args) -> EngineConfig:
@@ -139,13 +146,14 @@ def run_watch(args) -> int:
         profile = load_profile_arg(args.profile)
     except ProfileError as exc:
         return _err(str(exc))
+    warn_profile(profile, bool(args.profile))
     if str(args.port).lower().endswith(".csv"):
         return run_csv(args, profile)
     engine = Engine(engine_config(args), profile)
     capture = None
     if args.capture:
         meta = {
-            "format": "spcap 1",
+            "format": "spinrec 2",
             "start_time": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
             "port": args.port,
             "baud": args.baud,
@@ -174,6 +182,7 @@ def run_watch(args) -> int:
     old = signal.signal(signal.SIGTERM, lambda *a: stop.set())
     end = time.monotonic() + args.duration if args.duration else None
     device_seen = False
+    capture_failed = None
     try:
         while not stop.is_set() and (end is None or time.monotonic() < end):
             events = session.pump(timeout=0.1)
@@ -181,6 +190,7 @@ def run_watch(args) -> int:
                 printer(events)
             if capture is not None and capture.error:
                 printer([Notice("capture", session.assembler._last_sample_s, capture.error)])
+                capture_failed = capture.error
                 capture = None
             if not device_seen and engine.info is not None:
                 device_seen = True
@@ -196,8 +206,14 @@ def run_watch(args) -> int:
         health = asdict(link.health)
         if link.capture is not None:
             link.capture.close({"link": health})
-    s = summary(engine, health, printer, asdict(session.assembler.stats))
+    if link.capture is not None and link.capture.error:
+        capture_failed = link.capture.error
+    s = summary(engine, health, printer, asdict(session.assembler.stats),
+                {"notes": [f"capture failed: {capture_failed}"]} if capture_failed else None)
     print_summary(s, sys.stdout, args.json)
+    if capture_failed:
+        print(f"spinrig: {capture_failed}", file=sys.stderr)
+        return 1
     return 0
 
 
@@ -206,6 +222,7 @@ def run_replay(args) -> int:
         profile = load_profile_arg(args.profile)
     except ProfileError as exc:
         return _err(str(exc))
+    warn_profile(profile, bool(args.profile))
     try:
         contents = read_capture(args.file)
     except CaptureError as exc:

@@ -7,6 +7,17 @@ consumer through a bounded queue; if the consumer falls behind past that bound t
 dropped *and counted* (``overruns``), never silently. It sends a HOST_HEARTBEAT every 100 ms.
 When the port errors or disappears it reconnects by itself (backoff from 0.2 s, x1.5, up to 2 s),
 resets the decoder and queues a reconnect marker so the series is broken there.
+
+Session rules (SPEC.md section 2.6), kept here because only the reader sees every frame as it comes:
+
+- until a DEVICE_INFO arrives the host asks for one (REQUEST_INFO, with STREAM_CONTROL(1)) every
+  0.5 s: a lost request or a lost answer costs half a second, not the run;
+- a reboot (a new ``boot_id`` in DEVICE_STATUS or DEVICE_INFO, or ``sample_seq`` going backwards)
+  makes the host ask for the description again and re-enable streaming;
+- when status frames keep coming but no gyro data for 0.5 s after streaming was asked for, the
+  host asks again (every 0.5 s);
+- the consumer hears of silence (no byte for 0.5 s), of its end (with its length), of the port
+  going away and of its return (with the time it was gone).
 """
 
 from __future__ import annotations
@@ -16,6 +27,7 @@ import threading
 import time
 from dataclasses import dataclass
 
+import numpy as np
 import serial
 
 import firmware_protocol as fp
@@ -29,6 +41,8 @@ HEARTBEAT_S = 0.1
 BACKOFF_MIN_S = 0.2
 BACKOFF_MAX_S = 2.0
 BACKOFF_GROWTH = 1.5  #: 0.2, 0.3, 0.45, ... s: a port back after 2 s is found within about 0.7 s
+ASK_EVERY_S = 0.5  #: REQUEST_INFO / STREAM_CONTROL repeated this often until answered
+SILENT_AFTER_S = 0.5  #: no byte for this long is a silent link
 
 
 def open_port(port: str, baud: int, timeout: float = READ_TIMEOUT_S) -> serial.SerialBase:
@@ -54,13 +68,18 @@ class LinkHealth:
     reconnects: int = 0
     overruns: int = 0  #: decoded items dropped because the consumer fell behind
     connected: bool = False
+    info_requests: int = 0  #: REQUEST_INFO sent (the first, and the repeats while unanswered)
+    stream_requests: int = 0  #: STREAM_CONTROL(1) sent
+    reboots_seen: int = 0  #: device reboots the link noticed (and answered by asking again)
+    silences: int = 0  #: times the link went silent for SILENT_AFTER_S or more
+    device_known: bool = False  #: a DEVICE_INFO arrived since the last connect or reboot
 
 
 @dataclass(frozen=True)
 class LinkMessage:
     """Something the reader thread tells the consumer besides decoded items."""
 
-    kind: str  #: "hint", "disconnected", "reconnected", "error"
+    kind: str  #: "hint", "disconnected", "reconnected", "silent", "resumed", "reboot", "error"
     text: str
     host_s: float
 
@@ -82,6 +101,14 @@ class Link:
         self._write_lock = threading.Lock()
         self._seq = 0
         self.nonce = 0  #: the armed nonce (0: never armed by this link)
+        self._boot_id: int | None = None
+        self._expect_seq: int | None = None
+        self._last_ask = -1e9
+        self._last_gyro = -1e9
+        self._last_byte = time.monotonic()
+        self._silent = False
+        self._gone_at: float | None = None
+        self._last_info = None  #: the newest DEVICE_INFO (a capture started later opens with it)
 
     # ---------------------------------------------------------------- lifecycle
 
@@ -125,8 +152,55 @@ class Link:
                 return False
 
     def _hello(self) -> None:
-        self.send(fp.RequestInfo())
+        self.health.device_known = False
+        self._ask(time.monotonic())
+
+    def _ask(self, now: float, info: bool = True) -> None:
+        if info:
+            self.send(fp.RequestInfo())
+            self.health.info_requests += 1
         self.send(fp.StreamControl(1))
+        self.health.stream_requests += 1
+        self._last_ask = now
+
+    def _session(self, items: list, now: float) -> None:
+        """The session rules over one read's decoded items (see the module docstring)."""
+        for it in items:
+            if isinstance(it, fp.GyroBatch):
+                seq = it.sample_seq.astype(np.int64)
+                if self._expect_seq is not None and ((int(seq[0]) - self._expect_seq) % (1 << 32)) >= (1 << 31):
+                    self._rebooted(now, "sample counter went back")
+                self._expect_seq = int((int(seq[-1]) + int(it.counts[-1])) % (1 << 32))
+                self._last_gyro = now
+                continue
+            m = getattr(it, "message", None)
+            if isinstance(m, fp.DeviceInfo):
+                if self._boot_id is not None and m.boot_id != self._boot_id:
+                    self._rebooted(now, f"boot id {self._boot_id} -> {m.boot_id}", ask=False)
+                self._boot_id = m.boot_id
+                self._last_info = m
+                if not self.health.device_known:
+                    self.health.device_known = True
+                    if now - self._last_gyro > ASK_EVERY_S:
+                        self._ask(now, info=False)
+            elif isinstance(m, fp.DeviceStatus):
+                if self._boot_id is not None and m.boot_id != self._boot_id:
+                    self._rebooted(now, f"boot id {self._boot_id} -> {m.boot_id}")
+                    self._boot_id = m.boot_id
+        if now - self._last_ask >= ASK_EVERY_S:
+            if not self.health.device_known:
+                self._ask(now)
+            elif now - self._last_gyro > ASK_EVERY_S:
+                self._ask(now, info=False)
+
+    def _rebooted(self, now: float, why: str, ask: bool = True) -> None:
+        self.health.reboots_seen += 1
+        self.health.device_known = False
+        self._expect_seq = None
+        self._put(LinkMessage("reboot", f"{self.port_name}: the device rebooted ({why}); asking it to describe "
+                                        "itself and stream again", now))
+        if ask:
+            self._ask(now)
 
     # ---------------------------------------------------------------- reading
 
@@ -159,21 +233,38 @@ class Link:
             except (OSError, serial.SerialException) as exc:
                 now = time.monotonic()
                 self._drop_port()
-                self._put(LinkMessage("disconnected", f"{self.port_name}: {exc}", now))
+                self._gone_at = now
+                self._put(LinkMessage("disconnected", f"{self.port_name}: port gone ({exc})", now))
                 if not self.reconnect:
                     return
                 continue
             now = time.monotonic()
             if data:
-                if self.capture is not None:
-                    self.capture.write_data(data, now)
+                if self._silent:
+                    self._silent = False
+                    self._put(LinkMessage("resumed", f"{self.port_name}: data again after "
+                                                     f"{now - self._last_byte:.1f} s of silence", now))
+                self._last_byte = now
+                cap = self.capture
+                if cap is not None:
+                    if self._last_info is not None and not cap.has_device:
+                        cap.write_device(fp.encode_frame(self._last_info, 0), now)
+                    cap.write_data(data, now)
                 items = self.decoder.feed(data)
                 self._sync_health()
+                self._session(items, now)
                 if items:
                     self._put((now, items))
-            elif self.capture is not None:
-                self.capture.tick(now)
-            if not hinted and now - started >= HINT_AFTER_S and self.decoder.counters.frames_ok == 0:
+            else:
+                if self.capture is not None:
+                    self.capture.tick(now)
+                if not self._silent and now - self._last_byte >= SILENT_AFTER_S:
+                    self._silent = True
+                    self.health.silences += 1
+                    self._put(LinkMessage("silent", f"{self.port_name}: no data for {SILENT_AFTER_S:.1f} s", now))
+                if now - self._last_ask >= ASK_EVERY_S and not self.health.device_known:
+                    self._ask(now)
+            if not hinted and now - started >= HINT_AFTER_S and not self.health.device_known:
                 hinted = True
                 self._put(LinkMessage("hint", self.hint(), now))
             if self.heartbeat and now >= next_hb:
@@ -190,7 +281,9 @@ class Link:
         elif c.frames_ok == 0:
             why = "bytes arrive but no frame decodes: wrong baud rate, or another protocol on this port"
         else:
-            why = "frames decode but the device did not describe itself (no DEVICE_INFO)"
+            why = (f"frames decode but the device has not described itself (no DEVICE_INFO after "
+                   f"{self.health.info_requests} requests, one every {ASK_EVERY_S} s): gyro samples cannot be "
+                   "converted until it does; a lossy link drops the request or the answer")
         return f"no valid spinrig frame from {self.port_name} within {HINT_AFTER_S} s ({seen}): {why}"
 
     def _drop_port(self) -> None:
@@ -221,7 +314,12 @@ class Link:
             now = time.monotonic()
             if self.capture is not None:
                 self.capture.write_gap({"reason": "reconnect", "reconnects": self.health.reconnects}, now)
-            self._put(LinkMessage("reconnected", f"{self.port_name}: back after a reconnect", now))
+            gone = f" after {now - self._gone_at:.1f} s" if self._gone_at is not None else ""
+            self._put(LinkMessage("reconnected", f"{self.port_name}: port back{gone} (reconnect "
+                                                 f"{self.health.reconnects})", now))
+            self._expect_seq = None
+            self._last_byte = now
+            self._silent = False
             self._hello()
             return True
         return False

@@ -156,7 +156,7 @@ class LiveRun:
             return "captures record a live port, not a replay"
         if self.link.capture is not None:
             return f"already capturing to {self.link.capture.path}"
-        meta = {"format": "spcap 1", "start_time": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+        meta = {"format": "spinrec 2", "start_time": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
                 "port": self.source, "baud": self.baud, "spinrig_version": __version__,
                 "conditions": self.conditions, "profile": self.profile.to_toml() if self.profile.modes else None}
         if self.engine.info is not None:

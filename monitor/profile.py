@@ -27,6 +27,10 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 AXES = ("roll", "pitch", "yaw")
+MAX_MODES = 64  #: a profile lists at most this many modes (a real airframe has a handful)
+MAX_BYTES = 1_000_000  #: profile files larger than this are refused unread
+SAME_MODE_FRACTION = 0.005  #: two modes closer than this (relative) are one mode written twice
+BUNDLED = Path(__file__).resolve().parent / "profiles"
 MOUNTINGS = ("bungee", "foam", "clamp", "hand", "unknown")
 
 
@@ -131,6 +135,8 @@ def parse_profile(data: object, src: str = "<memory>") -> Profile:
     raw_modes = data.get("modes", [])
     if not isinstance(raw_modes, list):
         raise _e(src, "modes", "must be an array of [[modes]] tables")
+    if len(raw_modes) > MAX_MODES:
+        raise _e(src, "modes", f"{len(raw_modes)} modes; a profile holds at most {MAX_MODES}")
     modes = []
     for i, m in enumerate(raw_modes):
         w = f"modes[{i}]"
@@ -158,11 +164,53 @@ def parse_profile(data: object, src: str = "<memory>") -> Profile:
         if not isinstance(mname, str) or not mname:
             raise _e(src, f"{w}.name", "must be a non-empty string")
         modes.append(Mode(mname, f, z, axis))
-    return Profile(name, blades, mounting, tuple(sorted(modes, key=lambda x: x.freq_hz)), src)
+    order = sorted(range(len(modes)), key=lambda k: modes[k].freq_hz)
+    for a, b in zip(order[:-1], order[1:], strict=True):
+        fa, fb = modes[a].freq_hz, modes[b].freq_hz
+        if fb - fa <= SAME_MODE_FRACTION * fb:
+            raise _e(src, f"modes[{b}]", f"{fb:g} Hz repeats modes[{a}] ({fa:g} Hz): two modes closer than "
+                                         f"{SAME_MODE_FRACTION * 100:g} % are one mode written twice")
+    return Profile(name, blades, mounting, tuple(modes[k] for k in order), src)
+
+
+def profile_warnings(profile: Profile, sample_rate_hz: float | None = None) -> list[str]:
+    """What a usable profile may still get wrong, one line each: no modes; modes a gyro at
+    ``sample_rate_hz`` cannot see (at or above its Nyquist frequency)."""
+    out = []
+    if not profile.modes:
+        out.append(f"{profile.source}: no modes: crossings cannot be watched, only stray peaks looked for")
+    if sample_rate_hz:
+        nyq = sample_rate_hz / 2
+        for m in profile.modes:
+            if m.freq_hz * (1 + m.damping_ratio) >= nyq:
+                out.append(f"{profile.source}: mode {m.name!r} ({m.freq_hz:g} Hz) is at or above the gyro's Nyquist "
+                           f"frequency ({nyq:g} Hz): it cannot be seen and is not watched")
+    return out
+
+
+def find_profile(name_or_path: str | Path) -> Path:
+    """A profile file by path, or a bundled one by its airframe name (``quillback7``,
+    ``"Quillback 7"``)."""
+    p = Path(name_or_path)
+    if p.exists() or p.suffix == ".toml" and p.parent != Path("."):
+        return p
+    key = str(name_or_path).lower().replace(" ", "").replace("-", "").replace("_", "")
+    for cand in sorted(BUNDLED.glob("*.toml")):
+        if cand.stem.replace("_", "") == key:
+            return cand
+    return p
 
 
 def load_profile(path: str | Path) -> Profile:
-    p = Path(path)
+    """A profile by path or bundled airframe name; one-line :class:`ProfileError` otherwise."""
+    p = find_profile(path)
+    try:
+        size = p.stat().st_size
+    except OSError as exc:
+        known = ", ".join(c.stem for c in sorted(BUNDLED.glob("*.toml")))
+        raise ProfileError(f"{p}: cannot read: {exc.strerror or exc} (bundled profiles: {known})") from None
+    if size > MAX_BYTES:
+        raise ProfileError(f"{p}: {size} bytes; a profile file is at most {MAX_BYTES} bytes")
     try:
         text = p.read_text(encoding="utf-8")
     except OSError as exc:

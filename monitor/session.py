@@ -85,6 +85,18 @@ class Session:
         return self.engine.feed(self.assembler.feed(decoder.feed(data), host_s))
 
 
+def device_items(frame: bytes, assembler: Assembler) -> list:
+    """The decoded DEVICE_INFO of a capture's ``I`` chunk, when the assembler does not have that
+    device yet (a capture started mid-stream); nothing when it already does."""
+    import firmware_protocol as fp
+
+    items = [it for it in fp.StreamDecoder().feed(frame) if isinstance(getattr(it, "message", None), fp.DeviceInfo)]
+    known = assembler.info
+    if not items or (known is not None and known.boot_id == items[0].message.boot_id):
+        return []
+    return items[:1]
+
+
 class CaptureReplay:
     """Feed a capture through the live pipeline; iterating yields each chunk's events.
 
@@ -138,6 +150,13 @@ class CaptureReplay:
                 yield flush()
                 dec.reset()
                 yield self.engine.feed(self.session.assembler.mark_reconnect(ch.host_s))
+            elif ch.kind == "X":  # a damaged range: the byte stream breaks here
+                yield flush()
+                dec.reset()
+            elif ch.kind == "I":
+                yield flush()
+                yield self.engine.feed(self.session.assembler.feed(device_items(ch.payload, self.session.assembler),
+                                                                   ch.host_s))
         yield flush()
         yield self.engine.flush()
         self.decoder = dec

@@ -13,6 +13,12 @@ Scaling (one-sided, interior bins doubled; DC and an even-length Nyquist bin not
   reads A).
 
 Each frame has its mean removed first (``detrend='constant'``, as ``welch`` does by default).
+
+Frames over filled samples (short holes the assembler bridged, ``valid`` False) are computed with
+those samples weighted zero: the mean is taken over the real samples, the window is the window
+times the mask, and the PSD is scaled by sum(w^2) / sum((w m)^2), so broadband levels read
+unbiased; a tone reads low by about the window-weighted share of real samples (in power). Each
+frame carries its filled share (``FrameBatch.filled``).
 Windows are periodic (``scipy.signal.get_window``): Hann by default, flat-top for amplitude
 (F. J. Harris, Proc. IEEE 66(1), 1978).
 """
@@ -105,6 +111,7 @@ class FrameBatch:
     start: np.ndarray
     psd: np.ndarray
     amp_factor: np.ndarray  #: (bins,) amplitude per sqrt(PSD)
+    filled: np.ndarray | None = None  #: (F,) share of each frame's samples that were filled (None: none)
 
     @property
     def amp(self) -> np.ndarray:
@@ -122,6 +129,7 @@ class RollingSTFT:
         self.channels = channels
         n = config.nperseg
         self.win, s1, s2 = window(config.window, n)
+        self._w2 = s2
         factor = one_sided_factor(n)
         self.psd_scale = factor / (config.fs_hz * s2)
         self.amp_scale = factor / s1
@@ -143,12 +151,14 @@ class RollingSTFT:
         # columns [0, _fill); frames are strided views into it (no copy, no per-frame Python)
         if not hasattr(self, "_store"):
             self._store = np.zeros((self.channels, 4 * self.config.nperseg), dtype=np.float64)
+            self._mask = np.ones(4 * self.config.nperseg, dtype=np.float64)
         self._fill = 0
         self._buf_start = 0  # segment index of column 0
         self._next = 0  # segment index where the next frame starts
         self.samples = 0  # samples pushed into this segment
+        self._holes_at = -1  # segment index just past the last filled sample pushed (-1: none)
 
-    def _append(self, x: np.ndarray) -> None:
+    def _append(self, x: np.ndarray, valid: np.ndarray | None = None) -> None:
         """Append (C, n) samples, dropping columns no future frame needs and growing if needed."""
         n = x.shape[1]
         keep_from = self._next - self._buf_start  # columns before this are never read again
@@ -156,22 +166,32 @@ class RollingSTFT:
             if keep_from > 0:
                 tail = self._fill - keep_from
                 self._store[:, :tail] = self._store[:, keep_from : self._fill]
+                self._mask[:tail] = self._mask[keep_from : self._fill]
                 self._fill = tail
                 self._buf_start = self._next
             if self._fill + n > self._store.shape[1]:
                 grown = np.zeros((self.channels, 2 * (self._fill + n)), dtype=np.float64)
                 grown[:, : self._fill] = self._store[:, : self._fill]
                 self._store = grown
+                gm = np.ones(2 * (self._fill + n), dtype=np.float64)
+                gm[: self._fill] = self._mask[: self._fill]
+                self._mask = gm
         self._store[:, self._fill : self._fill + n] = x
+        if valid is None:
+            self._mask[self._fill : self._fill + n] = 1.0
+        else:
+            self._mask[self._fill : self._fill + n] = valid
+            self._holes_at = max(self._holes_at, self._buf_start + self._fill + n)
         self._fill += n
 
-    def push(self, samples: np.ndarray) -> FrameBatch | None:
-        """Add samples (n, C) in deg/s; returns every frame completed by them, or None."""
+    def push(self, samples: np.ndarray, valid: np.ndarray | None = None) -> FrameBatch | None:
+        """Add samples (n, C) in deg/s (``valid`` (n,) False where filled); returns every frame
+        completed by them, or None."""
         cfg = self.config
         n_per = cfg.nperseg
         hop = cfg.hop
         x = np.asarray(samples).T  # (C, n); cast to float64 as it is copied into the store
-        self._append(x)
+        self._append(x, valid)
         self.samples += x.shape[1]
         end = self._buf_start + self._fill
         if end - self._next < n_per:
@@ -190,6 +210,34 @@ class RollingSTFT:
         ri *= ri
         mag2 = ri[:, :, 0::2] + ri[:, :, 1::2]
         mag2 *= self.psd_scale
+        filled = None
+        if self._holes_at > self._next:  # some frame of this batch may hold filled samples
+            filled = self._masked(frames, starts, mag2)
         psd = np.transpose(mag2, (1, 2, 0))  # (F, bins, C), a view
         self._next = int(starts[-1] + hop)
-        return FrameBatch(self.segment, starts, psd, self.amp_factor)
+        return FrameBatch(self.segment, starts, psd, self.amp_factor, filled)
+
+    def _masked(self, frames: np.ndarray, starts: np.ndarray, mag2: np.ndarray) -> np.ndarray | None:
+        """Recompute, in place in ``mag2`` (C, F, bins), the frames that hold filled samples."""
+        n_per = self.config.nperseg
+        m0 = self._mask
+        sm = m0.strides[0]
+        masks = np.ndarray((starts.shape[0], n_per), dtype=m0.dtype, buffer=m0,
+                           offset=(self._next - self._buf_start) * sm, strides=(self.config.hop * sm, sm))
+        miss = n_per - masks.sum(axis=1)
+        hit = np.flatnonzero(miss > 0)
+        if hit.size == 0:
+            return None
+        w = self.win
+        for j in hit.tolist():
+            m = masks[j]
+            wm = w * m
+            e = float(wm @ wm)
+            if e <= 0:
+                mag2[:, j, :] = 0.0
+                continue
+            x = frames[:, j, :]
+            mean = (x @ m) / max(float(m.sum()), 1.0)
+            spec = np.fft.rfft((x - mean[:, None]) * wm, axis=1)
+            mag2[:, j, :] = (spec.real**2 + spec.imag**2) * self.psd_scale * (self._w2 / e)
+        return miss / n_per

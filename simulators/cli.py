@@ -15,9 +15,9 @@ from .transports import serve_pty, serve_tcp
 EXAMPLES = """\
 examples:
   spinrig sim quillback7                      a pty; connect with: spinrig watch /dev/pts/N
-  spinrig sim quillback7 --tcp 5760           connect with: spinrig watch socket://127.0.0.1:5760
+  spinrig sim quillback7 --tcp 52817           connect with: spinrig watch socket://127.0.0.1:52817
   spinrig sim pipit3 --fast --duration 60     as fast as the reader takes it, for 60 s of stream
-  spinrig sim quillback7 --fault corrupt=0.01 --fault disconnect=10:2 --tcp 5760
+  spinrig sim quillback7 --fault corrupt=0.01 --fault disconnect=10:2 --tcp 52817
   spinrig sim quillback7 --tap 2 --tap 4:1    tap the stack at 2 s, arm 1 at 4 s
   spinrig sim --list                          the built-in scenarios
 
@@ -29,17 +29,35 @@ frame clamped, eye protection, clear of the prop arc, a current-limited supply, 
 """
 
 
+def _bounded(kind, lo, hi, what, lo_open=False):
+    import argparse
+
+    def parse(text: str):
+        try:
+            v = kind(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not a{'n integer' if kind is int else ' number'}") from None
+        if v != v or v < lo or v > hi or (lo_open and v == lo):
+            raise argparse.ArgumentTypeError(f"{text} is outside {'(' if lo_open else '['}{lo:g}, {hi:g}] ({what})")
+        return v
+
+    return parse
+
+
 def add_arguments(p) -> None:
     p.add_argument("scenario", nargs="?", help="built-in scenario name or a scenario .toml file")
     where = p.add_mutually_exclusive_group()
     where.add_argument("--pty", action="store_true", help="serve on a new pseudo-terminal (the default)")
-    where.add_argument("--tcp", type=int, metavar="PORT", help="serve on TCP PORT (socket://HOST:PORT)")
+    where.add_argument("--tcp", type=_bounded(int, 0, 65535, "TCP port"), metavar="PORT",
+                       help="serve on TCP PORT, 0 to 65535; 0 picks a free one (socket://HOST:PORT)")
     p.add_argument("--host", default="127.0.0.1", help="TCP address to listen on (default 127.0.0.1)")
     p.add_argument("--fast", action="store_true", help="as fast as the reader reads, not real time")
     p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     p.add_argument("--fault", action="append", default=[], metavar="NAME=VALUE", help="inject a fault (repeatable)")
-    p.add_argument("--duration", type=float, metavar="S", help="stop after S seconds of simulated stream")
-    p.add_argument("--baud", type=int, help="emulate a UART at this baud: paced, FIFO overflow drops bytes")
+    p.add_argument("--duration", type=_bounded(float, 0.0, 1e6, "seconds", lo_open=True), metavar="S",
+                   help="stop after S seconds of simulated stream (S > 0)")
+    p.add_argument("--baud", type=_bounded(int, 300, 12_000_000, "baud"),
+                   help="emulate a UART at this baud (300 to 12000000): paced, FIFO overflow drops bytes")
     p.add_argument("--stream", action="store_true", help="stream from boot without waiting for the host")
     p.add_argument("--no-script", action="store_true", help="do not run the scenario's stand-alone throttle script")
     p.add_argument("--tap", action="append", default=[], metavar="AT[:TARGET[:STRENGTH]]",
@@ -59,6 +77,12 @@ def _taps(specs: list[str]) -> list[Tap]:
             raise ValueError(f"--tap {spec!r}: expected AT[:TARGET[:STRENGTH]]") from None
         taps.append(Tap(at, target, strength))
     return taps
+
+
+def _bundled_profile(name: str) -> bool:
+    from pathlib import Path
+
+    return (Path(__file__).resolve().parents[1] / "monitor" / "profiles" / f"{name}.toml").exists()
 
 
 def run(args) -> int:
@@ -84,8 +108,10 @@ def run(args) -> int:
     )
 
     def ready(where: str) -> None:
+        url = where if "://" in where or where.startswith("/") else where
+        profile = f" --profile {scenario.name}" if _bundled_profile(scenario.name) else ""
         print(f"spinrig sim: {scenario.airframe} ({scenario.name}) on {where}", flush=True)
-        print(where, flush=True)
+        print(f"connect with: spinrig watch {url}{profile}", flush=True)
 
     stop = threading.Event()
     try:

@@ -65,14 +65,56 @@ def test_time_base_unwraps_the_32_bit_clock():
     assert len(s) == 1 and s[0].dps.shape[0] == 128 and asm.stats.gaps == 0
 
 
-def test_lost_blocks_break_the_series_and_count_samples():
+def test_a_short_hole_is_filled_in_place_and_counted():
     b = blocks(10)
-    del b[3:5]  # two blocks = 32 samples lost
+    del b[3:5]  # two blocks = 32 samples (4 ms) lost: bridged, the series goes on
+    asm, out = run(stream(b))
+    assert not [o for o in out if isinstance(o, Gap)]
+    s = [o for o in out if isinstance(o, Samples)]
+    assert len({o.segment for o in s}) == 1
+    fill = [o for o in s if o.valid is not None]
+    assert len(fill) == 1 and fill[0].dps.shape[0] == 32 and not fill[0].valid.any()
+    assert fill[0].start == 48 and np.allclose(fill[0].dps, 10.0)  # linear between equal ends
+    assert asm.stats.samples_lost == 32 and asm.stats.holes_bridged == 1 and asm.stats.samples_filled == 32
+    assert sum(o.dps.shape[0] for o in s) == 160  # every sample index of the segment is there
+
+
+def test_a_long_hole_breaks_the_series():
+    b = blocks(40)
+    del b[3:30]  # 27 blocks = 432 samples = 54 ms at 8 kHz: longer than the 50 ms bridged
     asm, out = run(stream(b))
     gaps = [o for o in out if isinstance(o, Gap)]
-    assert len(gaps) == 1 and gaps[0].lost_samples == 32 and gaps[0].reason == "samples lost"
-    segs = {o.segment for o in out if isinstance(o, Samples)}
-    assert len(segs) == 2 and asm.stats.samples_lost == 32
+    assert len(gaps) == 1 and gaps[0].lost_samples == 432 and gaps[0].reason == "samples lost"
+    assert len({o.segment for o in out if isinstance(o, Samples)}) == 2 and asm.stats.samples_lost == 432
+    assert asm.stats.holes_bridged == 0
+
+
+@given(st.integers(1, 60), st.integers(1, 9), st.integers(0, 2**31))
+def test_samples_lost_between_reads_are_counted_exactly(lost_blocks, at, seed):
+    # the expected sequence number is carried across reads: a loss that falls exactly on a read
+    # boundary counts the same as one inside a read
+    b = blocks(70)
+    del b[at : at + lost_blocks]
+    data = stream(b)
+    rng = np.random.default_rng(seed)
+    cuts = sorted(set(rng.integers(1, len(data), 6).tolist()))
+    asm_a, out_a = run(data)
+    asm_b, out_b = run(data, chunks=[*cuts, None])
+    for asm in (asm_a, asm_b):
+        assert asm.stats.samples_lost == 16 * lost_blocks
+    assert asm_a.stats == asm_b.stats
+
+
+def test_a_loss_right_at_a_read_boundary_is_counted():
+    b = blocks(10)
+    frames = [fp.encode_frame(fp.DeviceInfo(motor_count=2), 0)]
+    frames += [fp.encode_frame(fp.GyroBlock(seq, t, x), i + 1) for i, (seq, t, x) in enumerate(b)]
+    first = b"".join(frames[:4])  # info and blocks 0..2
+    second = b"".join(frames[6:])  # blocks 5.. (3 and 4 lost between the reads)
+    dec, asm = fp.StreamDecoder(merge=True), Assembler()
+    asm.feed(dec.feed(first), host_s=0.0)
+    asm.feed(dec.feed(second), host_s=0.1)
+    assert asm.stats.samples_lost == 32
 
 
 def test_reboot_by_boot_id_and_by_counter_going_back():

@@ -72,7 +72,7 @@ def test_spinrig_sim_serves_each_scenario(name, where):
     proc = _spawn_sim(name, "--fast", "--duration", "60", *extra)
     try:
         assert "spinrig sim:" in proc.stdout.readline()
-        url = proc.stdout.readline().strip()
+        url = proc.stdout.readline().split("spinrig watch ", 1)[1].split()[0]
         port = serial.Serial(url, timeout=0.2) if where == "pty" else serial.serial_for_url(url, timeout=0.2)
         port.write(fp.encode_frame(fp.RequestInfo(), 0) + fp.encode_frame(fp.StreamControl(1), 1))
         dec = fp.StreamDecoder()

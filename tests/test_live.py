@@ -42,7 +42,7 @@ def spinrig(*args, **kw):
 
 
 def test_capture_round_trip_and_a_cut_tail(tmp_path):
-    f = tmp_path / "c.spcap"
+    f = tmp_path / "c.spinrec"
     clock = iter(np.arange(0, 100, 0.1)).__next__
     w = CaptureWriter(f, {"port": "sim://x", "conditions": {"props": "off"}}, clock=clock)
     for i in range(20):
@@ -53,28 +53,28 @@ def test_capture_round_trip_and_a_cut_tail(tmp_path):
     assert c.ended_cleanly and c.meta["port"] == "sim://x" and c.data_bytes == 2000 and c.cut_bytes == 0
     assert [ch.kind for ch in c.chunks].count("G") == 1
     raw = f.read_bytes()
-    (tmp_path / "cut.spcap").write_bytes(raw[:-30])
-    cut = read_capture(tmp_path / "cut.spcap")
+    (tmp_path / "cut.spinrec").write_bytes(raw[:-30])
+    cut = read_capture(tmp_path / "cut.spinrec")
     assert cut.cut_bytes > 0 and "incomplete chunk" in cut.cut_message() and cut.data_bytes == 2000
     with pytest.raises(CaptureError, match=r"not a spinrig capture \(bad magic at byte 0\)"):
-        (tmp_path / "bad.spcap").write_bytes(b"hello world")
-        read_capture(tmp_path / "bad.spcap")
+        (tmp_path / "bad.spinrec").write_bytes(b"hello world")
+        read_capture(tmp_path / "bad.spinrec")
 
 
 def test_capture_flushes_every_half_second(tmp_path):
     now = [0.0]
-    w = CaptureWriter(tmp_path / "f.spcap", {}, clock=lambda: now[0])
-    base = (tmp_path / "f.spcap").stat().st_size
+    w = CaptureWriter(tmp_path / "f.spinrec", {}, clock=lambda: now[0])
+    base = (tmp_path / "f.spinrec").stat().st_size
     w.write_data(b"x" * 10, 0.1)
-    assert (tmp_path / "f.spcap").stat().st_size == base  # buffered
+    assert (tmp_path / "f.spinrec").stat().st_size == base  # buffered
     now[0] = 0.6
     w.write_data(b"y" * 10, 0.6)
-    assert (tmp_path / "f.spcap").stat().st_size > base  # flushed after 0.5 s
+    assert (tmp_path / "f.spinrec").stat().st_size > base  # flushed after 0.5 s
     w.close()
 
 
 def test_kill_9_leaves_a_readable_capture(tmp_path):
-    f = tmp_path / "k.spcap"
+    f = tmp_path / "k.spinrec"
     proc = subprocess.Popen([sys.executable, "-m", "monitor", "watch", "sim://quillback7?stream=1&seed=3", "--headless",
                              "--capture", str(f), "--duration", "60"], stdout=subprocess.PIPE, text=True)
     try:
@@ -94,7 +94,7 @@ def test_kill_9_leaves_a_readable_capture(tmp_path):
 
 
 def test_a_full_disk_stops_the_capture_cleanly(tmp_path):
-    f = tmp_path / "full.spcap"
+    f = tmp_path / "full.spinrec"
 
     def limit():
         signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
@@ -103,7 +103,8 @@ def test_a_full_disk_stops_the_capture_cleanly(tmp_path):
     proc = subprocess.run([sys.executable, "-m", "monitor", "watch", "sim://quillback7?stream=1&fast=1", "--headless",
                            "--capture", str(f), "--duration", "3"], capture_output=True, text=True, timeout=120,
                           preexec_fn=limit)
-    assert proc.returncode == 0, proc.stderr
+    assert proc.returncode == 1, proc.stderr  # the run ends, but it says the capture failed
+    assert "write failed" in proc.stderr
     line = next(ln for ln in proc.stdout.splitlines() if "write failed" in ln)
     assert f"capture {f}: write failed after" in line and "the file is readable" in line
     c = read_capture(f)
@@ -114,7 +115,7 @@ def test_a_full_disk_stops_the_capture_cleanly(tmp_path):
 
 
 def test_replay_gives_the_live_events(tmp_path):
-    cap, live, again = tmp_path / "r.spcap", tmp_path / "live.jsonl", tmp_path / "replay.jsonl"
+    cap, live, again = tmp_path / "r.spinrec", tmp_path / "live.jsonl", tmp_path / "replay.jsonl"
     url = "sim://quillback7?fast=1&seed=5"
     proc = spinrig("watch", url, "--headless", "--profile", str(PROFILE), "--capture", str(cap), "--events", str(live),
                    "--duration", "4", "--overlap", "0.875")
@@ -134,7 +135,7 @@ def test_replay_gives_the_live_events(tmp_path):
 
 
 def test_export_csv_then_watch_the_csv(tmp_path):
-    cap = tmp_path / "e.spcap"
+    cap = tmp_path / "e.spinrec"
     proc = spinrig("watch", "sim://quillback7?fast=1&seed=6", "--headless", "--capture", str(cap), "--duration", "2")
     assert proc.returncode == 0, proc.stderr
     assert spinrig("export", str(cap), "--csv").returncode == 0
@@ -215,7 +216,7 @@ def test_tcp_disconnect_reconnects_within_a_second_of_the_port_returning():
                              "disconnect=2:2", "--duration", "30"], stdout=subprocess.PIPE, text=True)
     try:
         proc.stdout.readline()
-        url = proc.stdout.readline().strip()
+        url = proc.stdout.readline().split("spinrig watch ", 1)[1].split()[0]
         t0 = time.monotonic()
         eng = Engine(EngineConfig())
         link = Link(url)
@@ -234,7 +235,7 @@ def test_tcp_disconnect_reconnects_within_a_second_of_the_port_returning():
         proc.wait()
     assert back_at is not None and link.health.reconnects == 1
     assert 3.7 <= back_at <= 5.0  # the port returns at 4 s of the simulator's clock (real time)
-    assert any(e.as_dict()["kind"] == "link" and "back after a reconnect" in e.as_dict()["message"] for e in events)
+    assert any(e.as_dict()["kind"] == "link" and "port back after" in e.as_dict()["message"] for e in events)
 
 
 def _pipeline(url_faults, seconds, scenario="quillback7", **dev):
@@ -329,7 +330,7 @@ def test_detector_batching_and_stream_cuts_never_change_the_events():
     every_frame = run(0.0, 0)
     assert len([e for e in every_frame[0] if e["kind"] == "crossing"]) >= 3
     kinds = {e["kind"] for e in every_frame[0]}
-    assert {"reboot", "gap", "nearing", "clear"} <= kinds
+    assert {"reboot", "nearing", "clear"} <= kinds  # (the dropped bytes are short holes: bridged)
     assert every_frame[3] == every_frame[4]  # after flush every frame has been seen by the detectors
     for every, cut in [(0.1, 0), (0.1, 7), (0.5, 3), (2.0, 40)]:
         assert run(every, cut) == every_frame, (every, cut)

@@ -315,7 +315,7 @@ class SpinrigApp(App):
         if self.live.link is not None and self.live.link.capture is not None:
             self.note(self.live.stop_capture() or "no capture")
             return
-        path = self.capture_path or time.strftime("spinrig-%Y%m%d-%H%M%S.spcap")
+        path = self.capture_path or time.strftime("spinrig-%Y%m%d-%H%M%S.spinrec")
         self.note(self.live.start_capture(path))
 
     def action_axis(self, i: int) -> None:
