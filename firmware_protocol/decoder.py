@@ -29,6 +29,7 @@ from .messages import DECODERS, GyroBlock, MalformedPayload, Message
 _GYRO = int(MessageType.GYRO_BLOCK)
 _MOTOR = int(MessageType.MOTOR_STATE)
 _INFO = int(MessageType.DEVICE_INFO)
+_STATUS = int(MessageType.DEVICE_STATUS)
 _GYRO_FIXED = HEADER_BYTES + GYRO_HEADER_BYTES + 2  # body bytes besides the samples: 13
 _COUNT_AT = HEADER_BYTES + 8  # body offset of GYRO_BLOCK.count
 
@@ -187,6 +188,7 @@ class StreamDecoder:
         self._tail = b""
         self._discarding = False
         self._last_seq = -1
+        self._boot_id: int | None = None
         self._decoders = {t: f for t, f in DECODERS.items() if known_types is None or t in known_types}
         #: (type, seq, reason) of recent frames with a valid CRC but a bad payload, newest last;
         #: a device answers these with COMMAND_ACK MALFORMED. Bounded; the consumer may clear it.
@@ -277,7 +279,11 @@ class StreamDecoder:
             else:
                 dec = decoders.get(t)
                 if dec is None:
-                    c.unknown_type += 1
+                    c.unknown_type += 1  # a valid frame of a later version: skipped, but counted in seq
+                    s = body[1]
+                    if last_seq >= 0:
+                        lost += (s - last_seq - 1) & 0xFF
+                    last_seq = s
                     continue
                 try:
                     msg = dec(body[HEADER_BYTES:-2])
@@ -297,6 +303,12 @@ class StreamDecoder:
                         gyro = []
                     out.append(Received(body[1], msg))
             s = body[1]
+            if t in (_INFO, _STATUS):  # a new boot restarts the frame counter (SPEC 4.1): no loss across it
+                boot = int.from_bytes(body[HEADER_BYTES + (2 if t == _INFO else 4) : HEADER_BYTES + (6 if t == _INFO
+                                                                                                   else 8)], "little")
+                if self._boot_id is not None and boot != self._boot_id:
+                    last_seq = -1
+                self._boot_id = boot
             if last_seq >= 0:
                 lost += (s - last_seq - 1) & 0xFF
             last_seq = s

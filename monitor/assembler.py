@@ -30,8 +30,8 @@ HALF = 1 << 31
 #: tone about a fifth of its power at worst and raises the floor by the hole's share of the window
 #: energy (measured in tests/test_field_faults.py); longer holes restart the spectra
 BRIDGE_MAX_S = 0.05
-#: the device clock's drift is a least-squares slope of device time against host time over at
-#: least this much host time (read latency scatters single reads by milliseconds)
+#: the device clock's drift is a least-squares slope of device time against host time (their
+#: least-latency envelope, one point a second) over at least this much host time
 DRIFT_MIN_SPAN_S = 10.0
 #: a drift beyond this is not a clock: the stream is not in real time (a replay, a fast simulation)
 DRIFT_MAX_PPM = 20000.0
@@ -301,25 +301,42 @@ class Assembler:
 
 
 class _DriftFit:
-    """Least-squares slope of device time against host time (running sums, bounded memory),
-    each relative to the first pair so the sums stay well conditioned over hours."""
+    """The drift of the device clock against the host's, from (host time, device time) pairs.
+
+    A read's device time lags the host's by the transport's latency, which varies (a stall
+    delivers a backlog late). The least latency shows as the largest offset device - host within a
+    short while, so the offsets are reduced to their maximum per second of host time, and the
+    drift is the least-squares slope of those maxima against host time (running sums, bounded
+    memory, relative to the first pair so the sums stay well conditioned over hours)."""
+
+    BIN_S = 1.0
 
     def __init__(self):
         self.ref: tuple[float, float] | None = None
         self.n = 0
         self.sx = self.sy = self.sxx = self.sxy = 0.0
         self.last_x = 0.0
+        self._bin = None  #: (bin index, host time of the max, max offset)
 
     def add(self, host_s: float, dev_s: float) -> None:
         if self.ref is None:
             self.ref = (host_s, dev_s)
-        x, y = host_s - self.ref[0], dev_s - self.ref[1]
+        x = host_s - self.ref[0]
+        off = (dev_s - self.ref[1]) - x
+        k = int(x // self.BIN_S)
+        if self._bin is not None and self._bin[0] != k:
+            self._take(self._bin[1], self._bin[2])
+            self._bin = None
+        if self._bin is None or off > self._bin[2]:
+            self._bin = (k, x, off)
+        self.last_x = x
+
+    def _take(self, x: float, off: float) -> None:
         self.n += 1
         self.sx += x
-        self.sy += y
+        self.sy += off
         self.sxx += x * x
-        self.sxy += x * y
-        self.last_x = x
+        self.sxy += x * off
 
     @property
     def span_s(self) -> float:
@@ -329,7 +346,7 @@ class _DriftFit:
         den = self.n * self.sxx - self.sx * self.sx
         if self.n < 3 or den <= 0:
             return None
-        return ((self.n * self.sxy - self.sx * self.sy) / den - 1.0) * 1e6
+        return (self.n * self.sxy - self.sx * self.sy) / den * 1e6
 
 
 class RpmTrack:

@@ -26,6 +26,8 @@ from .rpm_estimate import RpmEstimator
 from .spectra import RollingSTFT, SpectrumConfig
 from .stray import StrayPeakFinder
 
+GAP_LINE_S = 1.0  #: lost-sample gaps are told at most once a second (the rest counted in the next line)
+
 
 @dataclass(frozen=True)
 class EngineConfig:
@@ -100,6 +102,9 @@ class Engine:
         self.detected = 0  #: frames the detectors have seen
         self.frames_filled = 0  #: frames over a bridged hole (their spectra are flagged)
         self._frames_at_gap = 0
+        self._gap_line_t = -1e9
+        self._gaps_quiet = 0
+        self._gaps_quiet_lost = 0
         self._starved: list[float] = []
         self._starve_said = False
         self.last_filled = 0.0  #: share of the newest frame's samples that were filled
@@ -204,8 +209,7 @@ class Engine:
                     self._est_trend.clear()
                     self._gap_pending = True
                     kind = {"device reboot": "reboot", "reconnect": "reconnect"}.get(it.reason, "gap")
-                    msg = f"{it.reason}" + (f": {it.lost_samples} samples" if it.lost_samples else "")
-                    new.append(Notice(kind, it.t_s, msg, {"lost_samples": it.lost_samples}))
+                    self._gap_notice(kind, it, new)
                     self._starving(it.t_s, new)
                 elif isinstance(it, DeviceChange):
                     self._detect(new)
@@ -221,6 +225,22 @@ class Engine:
                 self._detect(new)
             self._keep(new)
         return new
+
+    def _gap_notice(self, kind: str, gap: Gap, new: list) -> None:
+        """One line per gap, except that lost-sample gaps closer than GAP_LINE_S to the last line are
+        counted and told on the next line (a lossy link must not flood the log)."""
+        if kind == "gap" and gap.t_s - self._gap_line_t < GAP_LINE_S:
+            self._gaps_quiet += 1
+            self._gaps_quiet_lost += gap.lost_samples
+            return
+        msg = f"{gap.reason}" + (f": {gap.lost_samples} samples" if gap.lost_samples else "")
+        data = {"lost_samples": gap.lost_samples}
+        if self._gaps_quiet:
+            msg += f" (and {self._gaps_quiet} more gaps, {self._gaps_quiet_lost} samples, since the last line)"
+            data.update(gaps_since=self._gaps_quiet, lost_since=self._gaps_quiet_lost)
+            self._gaps_quiet = self._gaps_quiet_lost = 0
+        self._gap_line_t = gap.t_s
+        new.append(Notice(kind, gap.t_s, msg, data))
 
     def _starving(self, t_s: float, new: list) -> None:
         """Gaps that come faster than a window fills leave no spectra: say so once, with the rate."""

@@ -60,6 +60,7 @@ def summary(engine: Engine, health: dict, printer: EventPrinter, assembler_stats
         "stray_peaks": [p.as_dict() for p in engine.stray_peaks()],
         "bands": [b.as_dict() for b in engine.bands()],
         "frames": engine.frames,
+        "frames_filled": engine.frames_filled,
         **(extra or {}),
     }
 
@@ -75,14 +76,23 @@ def print_summary(s: dict, out, as_json: bool) -> None:
         out.write(
             f"link: {link.get('bytes', 0)} bytes, {link.get('frames_ok', 0)} frames ok, "
             f"{link.get('crc_errors', 0)} CRC errors, {link.get('malformed', 0)} malformed, "
-            f"{link.get('reconnects', 0)} reconnects, {link.get('overruns', 0)} overruns\n"
+            f"{link.get('reconnects', 0)} reconnects, {link.get('overruns', 0)} overruns"
+            + (f", {link['silences']} silences" if link.get("silences") else "")
+            + (f", {link['reboots_seen']} reboots answered" if link.get("reboots_seen") else "")
+            + (f", {link['info_requests']} description requests" if link.get("info_requests", 0) > 1 else "")
+            + "\n"
         )
-    out.write(
-        f"stream: {st.get('samples', 0)} samples, {st.get('samples_lost', 0)} lost by sequence number in "
-        f"{st.get('gaps', 0)} gaps, {st.get('reboots', 0)} device reboots"
-        + (f", device clock {st['drift_ppm']:+.0f} ppm against the host" if st.get("drift_ppm") is not None else "")
-        + "\n"
-    )
+    if st:
+        clock = (f"device clock {st['drift_ppm']:+.0f} ppm against the host" if st.get("drift_ppm") is not None
+                 else f"device clock drift not known ({st['drift_note']})" if st.get("drift_note") else "")
+        out.write(
+            f"stream: {st.get('samples', 0)} samples; {st.get('samples_lost', 0)} lost by sequence number, "
+            f"{st.get('samples_filled', 0)} of them in {st.get('holes_bridged', 0)} short holes bridged, the rest "
+            f"in {st.get('gaps', 0)} gaps; {st.get('reboots', 0)} device reboots" + (f"; {clock}" if clock else "")
+            + "\n"
+        )
+        if s.get("frames_filled"):
+            out.write(f"spectra over bridged holes (flagged): {s['frames_filled']} of {s['frames']}\n")
     ev = s["events"]
     out.write(f"crossings: {ev.get('crossing', 0)} crossing, {ev.get('nearing', 0)} nearing events, "
               f"{s['frames']} spectra\n")

@@ -8,15 +8,10 @@ dropped *and counted* (``overruns``), never silently. It sends a HOST_HEARTBEAT 
 When the port errors or disappears it reconnects by itself (backoff from 0.2 s, x1.5, up to 2 s),
 resets the decoder and queues a reconnect marker so the series is broken there.
 
-Session rules (SPEC.md section 2.6), kept here because only the reader sees every frame as it comes:
-
-- until a DEVICE_INFO arrives the host asks for one (REQUEST_INFO, with STREAM_CONTROL(1)) every
-  0.5 s: a lost request or a lost answer costs half a second, not the run;
-- a reboot (a new ``boot_id`` in DEVICE_STATUS or DEVICE_INFO, or ``sample_seq`` going backwards)
-  makes the host ask for the description again and re-enable streaming;
-- when status frames keep coming but no gyro data for 0.5 s after streaming was asked for, the
-  host asks again (every 0.5 s);
-- the consumer hears of silence (no byte for 0.5 s), of its end (with its length), of the port
+The reader applies the host's session rules (SPEC.md section 2.6, :mod:`monitor.session_rules`)
+to every read, because only it sees every frame as it comes: a lost request or a lost answer costs
+half a second, not the run, and a rebooted device is asked to stream again. The consumer hears of
+silence (no byte for 0.5 s), of its end (with its length), of the port
   going away and of its return (with the time it was gone).
 """
 
@@ -27,12 +22,12 @@ import threading
 import time
 from dataclasses import dataclass
 
-import numpy as np
 import serial
 
 import firmware_protocol as fp
 
 from .capture import CaptureWriter
+from .session_rules import ASK_EVERY_S, SessionRules
 
 HINT_AFTER_S = 1.5
 READ_SIZE = 4096
@@ -41,7 +36,6 @@ HEARTBEAT_S = 0.1
 BACKOFF_MIN_S = 0.2
 BACKOFF_MAX_S = 2.0
 BACKOFF_GROWTH = 1.5  #: 0.2, 0.3, 0.45, ... s: a port back after 2 s is found within about 0.7 s
-ASK_EVERY_S = 0.5  #: REQUEST_INFO / STREAM_CONTROL repeated this often until answered
 SILENT_AFTER_S = 0.5  #: no byte for this long is a silent link
 
 
@@ -101,14 +95,10 @@ class Link:
         self._write_lock = threading.Lock()
         self._seq = 0
         self.nonce = 0  #: the armed nonce (0: never armed by this link)
-        self._boot_id: int | None = None
-        self._expect_seq: int | None = None
-        self._last_ask = -1e9
-        self._last_gyro = -1e9
+        self.rules = SessionRules()
         self._last_byte = time.monotonic()
         self._silent = False
         self._gone_at: float | None = None
-        self._last_info = None  #: the newest DEVICE_INFO (a capture started later opens with it)
 
     # ---------------------------------------------------------------- lifecycle
 
@@ -152,55 +142,23 @@ class Link:
                 return False
 
     def _hello(self) -> None:
-        self.health.device_known = False
-        self._ask(time.monotonic())
+        self._send_all(self.rules.start(time.monotonic()))
 
-    def _ask(self, now: float, info: bool = True) -> None:
-        if info:
-            self.send(fp.RequestInfo())
-            self.health.info_requests += 1
-        self.send(fp.StreamControl(1))
-        self.health.stream_requests += 1
-        self._last_ask = now
+    def _send_all(self, msgs: list) -> None:
+        for m in msgs:
+            self.send(m)
+        c = self.rules.counts
+        h = self.health
+        h.info_requests, h.stream_requests, h.reboots_seen = c.info_requests, c.stream_requests, c.reboots_seen
+        h.device_known = self.rules.device_known
 
     def _session(self, items: list, now: float) -> None:
-        """The session rules over one read's decoded items (see the module docstring)."""
-        for it in items:
-            if isinstance(it, fp.GyroBatch):
-                seq = it.sample_seq.astype(np.int64)
-                if self._expect_seq is not None and ((int(seq[0]) - self._expect_seq) % (1 << 32)) >= (1 << 31):
-                    self._rebooted(now, "sample counter went back")
-                self._expect_seq = int((int(seq[-1]) + int(it.counts[-1])) % (1 << 32))
-                self._last_gyro = now
-                continue
-            m = getattr(it, "message", None)
-            if isinstance(m, fp.DeviceInfo):
-                if self._boot_id is not None and m.boot_id != self._boot_id:
-                    self._rebooted(now, f"boot id {self._boot_id} -> {m.boot_id}", ask=False)
-                self._boot_id = m.boot_id
-                self._last_info = m
-                if not self.health.device_known:
-                    self.health.device_known = True
-                    if now - self._last_gyro > ASK_EVERY_S:
-                        self._ask(now, info=False)
-            elif isinstance(m, fp.DeviceStatus):
-                if self._boot_id is not None and m.boot_id != self._boot_id:
-                    self._rebooted(now, f"boot id {self._boot_id} -> {m.boot_id}")
-                    self._boot_id = m.boot_id
-        if now - self._last_ask >= ASK_EVERY_S:
-            if not self.health.device_known:
-                self._ask(now)
-            elif now - self._last_gyro > ASK_EVERY_S:
-                self._ask(now, info=False)
-
-    def _rebooted(self, now: float, why: str, ask: bool = True) -> None:
-        self.health.reboots_seen += 1
-        self.health.device_known = False
-        self._expect_seq = None
-        self._put(LinkMessage("reboot", f"{self.port_name}: the device rebooted ({why}); asking it to describe "
-                                        "itself and stream again", now))
-        if ask:
-            self._ask(now)
+        """The session rules (monitor.session_rules) over one read's decoded items."""
+        send, reboots = self.rules.observe(items, now)
+        for why in reboots:
+            self._put(LinkMessage("reboot", f"{self.port_name}: the device rebooted ({why}); asking it to describe "
+                                            "itself and stream again", now))
+        self._send_all(send)
 
     # ---------------------------------------------------------------- reading
 
@@ -247,8 +205,8 @@ class Link:
                 self._last_byte = now
                 cap = self.capture
                 if cap is not None:
-                    if self._last_info is not None and not cap.has_device:
-                        cap.write_device(fp.encode_frame(self._last_info, 0), now)
+                    if self.rules.last_info is not None and not cap.has_device:
+                        cap.write_device(fp.encode_frame(self.rules.last_info, 0), now)
                     cap.write_data(data, now)
                 items = self.decoder.feed(data)
                 self._sync_health()
@@ -262,8 +220,7 @@ class Link:
                     self._silent = True
                     self.health.silences += 1
                     self._put(LinkMessage("silent", f"{self.port_name}: no data for {SILENT_AFTER_S:.1f} s", now))
-                if now - self._last_ask >= ASK_EVERY_S and not self.health.device_known:
-                    self._ask(now)
+                self._send_all(self.rules.tick(now))
             if not hinted and now - started >= HINT_AFTER_S and not self.health.device_known:
                 hinted = True
                 self._put(LinkMessage("hint", self.hint(), now))
@@ -317,7 +274,6 @@ class Link:
             gone = f" after {now - self._gone_at:.1f} s" if self._gone_at is not None else ""
             self._put(LinkMessage("reconnected", f"{self.port_name}: port back{gone} (reconnect "
                                                  f"{self.health.reconnects})", now))
-            self._expect_seq = None
             self._last_byte = now
             self._silent = False
             self._hello()

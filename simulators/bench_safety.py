@@ -52,6 +52,8 @@ class BenchSafety:
     def command(self, msg, now_ms: float) -> tuple[int, int]:
         """Apply one valid host command; returns (AckResult, detail)."""
         if isinstance(msg, ArmBench):
+            if self.throttle_limit == 0 or self.motor_count == 0:
+                return AckResult.UNSUPPORTED, 0  # motors reported (or none) but not driven here
             if self.faults & BLOCKING_ARM:
                 return AckResult.REFUSED_FAULT, self.faults
             if self.armed and self.nonce != msg.nonce:

@@ -407,6 +407,11 @@ sr_verdict_t sr_bench_command(sr_bench_t *b, const sr_command_t *cmd, uint32_t n
     v.detail = 0;
     switch (cmd->type) {
     case SR_ARM_BENCH:
+        if (b->throttle_limit == 0 || b->motor_count == 0) {
+            /* motors reported (or none) but not driven by this device: nothing can be armed */
+            v.result = SR_ACK_UNSUPPORTED;
+            return v;
+        }
         if (b->faults & SR_FAULTS_BLOCKING_ARM) {
             v.result = SR_ACK_REFUSED_FAULT;
             v.detail = b->faults;

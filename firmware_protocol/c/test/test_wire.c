@@ -164,6 +164,12 @@ static void test_bench_safety(void)
     sr_bench_stop(&b, SR_FAULT_SUPPLY_LOW);
     v = sr_bench_command(&b, &arm, 20000);
     CHECK(v.result == SR_ACK_REFUSED_FAULT && !b.armed, "fault blocks arming");
+
+    /* Motors reported but not driven (throttle_limit 0): arming is UNSUPPORTED (SPEC 7.6). */
+    sr_bench_init(&b, 500, 0, 4);
+    arm.u.nonce = 5;
+    v = sr_bench_command(&b, &arm, 0);
+    CHECK(v.result == SR_ACK_UNSUPPORTED && !b.armed, "no driven motors: arming unsupported");
 }
 
 static void test_decoder_resync(void)
