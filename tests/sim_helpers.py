@@ -40,3 +40,45 @@ class Host:
 
     def acks(self) -> list[fp.CommandAck]:
         return self.messages(fp.CommandAck)
+
+
+class SessionHost:
+    """spinrig's host pipeline (decoder, session rules, assembler, engine) against a SimStream
+    in fast simulated time: the session rules run on the simulator's clock, their commands go to
+    the device, so a test can say *when* (in simulated seconds) something happened."""
+
+    def __init__(self, stream, engine=None):
+        from monitor.assembler import Assembler
+        from monitor.session_rules import SessionRules
+
+        self.stream = stream
+        self.decoder = fp.StreamDecoder(merge=True)
+        self.assembler = Assembler()
+        self.engine = engine
+        self.rules = SessionRules()
+        self.events: list = []
+        self.reboot_texts: list[tuple[float, str]] = []
+        self.first_block_after: list[tuple[float, int]] = []  #: (sim time, sample_seq) of blocks
+        self._seq = 0
+        self._send(self.rules.start(stream.time_s))
+
+    def _send(self, msgs) -> None:
+        for m in msgs:
+            self.stream.receive(fp.encode_frame(m, self._seq))
+            self._seq = (self._seq + 1) & 0xFF
+
+    def run_until(self, t_s: float) -> None:
+        while self.stream.time_s < t_s:
+            now = self.stream.time_s
+            items = self.decoder.feed(self.stream.produce_chunk())
+            for it in items:
+                if isinstance(it, fp.GyroBatch):
+                    self.first_block_after.append((now, int(it.sample_seq[0])))
+            send, reboots = self.rules.observe(items, now)
+            self.reboot_texts += [(now, r) for r in reboots]
+            self._send(send)
+            out = self.assembler.feed(items, host_s=now)
+            if self.engine is not None:
+                self.events += self.engine.feed(out)
+        if self.engine is not None:
+            self.events += self.engine.flush()
