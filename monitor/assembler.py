@@ -303,19 +303,25 @@ class Assembler:
 class _DriftFit:
     """The drift of the device clock against the host's, from (host time, device time) pairs.
 
-    A read's device time lags the host's by the transport's latency, which varies (a stall
-    delivers a backlog late). The least latency shows as the largest offset device - host within a
-    short while, so the offsets are reduced to their maximum per second of host time, and the
-    drift is the least-squares slope of those maxima against host time (running sums, bounded
-    memory, relative to the first pair so the sums stay well conditioned over hours)."""
+    A read's device time lags the host's by the transport's latency, which is never below some
+    least value but often far above it (a stall delivers a backlog late, a busy link queues). The
+    offsets device - host therefore lie *below* a line whose slope is the drift. Following Moon,
+    Skelly and Towsley, "Estimation and removal of clock skew from network delay measurements"
+    (IEEE INFOCOM 1999), the drift is the slope of the line that lies on or above every offset and
+    is closest to them in sum: an edge of their upper convex hull, the one spanning their mean
+    host time. Offsets are first reduced to their maximum per second of host time; only the hull's
+    corners, the count and the sum of host times are kept (bounded memory over hours), relative
+    to the first pair so the numbers stay well conditioned."""
 
     BIN_S = 1.0
+    MAX_HULL = 4096  #: corners kept at most (a straight-line envelope keeps a handful)
 
     def __init__(self):
         self.ref: tuple[float, float] | None = None
         self.n = 0
-        self.sx = self.sy = self.sxx = self.sxy = 0.0
+        self.sx = 0.0
         self.last_x = 0.0
+        self.hull: list[tuple[float, float]] = []  #: upper hull corners, host time increasing
         self._bin = None  #: (bin index, host time of the max, max offset)
 
     def add(self, host_s: float, dev_s: float) -> None:
@@ -334,19 +340,34 @@ class _DriftFit:
     def _take(self, x: float, off: float) -> None:
         self.n += 1
         self.sx += x
-        self.sy += off
-        self.sxx += x * x
-        self.sxy += x * off
+        h = self.hull
+        if h and x <= h[-1][0]:
+            return  # host time must increase (it does: bins are in order)
+        # Andrew's monotone chain, upper half: drop corners that are not right turns
+        while len(h) >= 2:
+            (x1, y1), (x2, y2) = h[-2], h[-1]
+            if (x2 - x1) * (off - y1) - (y2 - y1) * (x - x1) >= 0:
+                h.pop()
+            else:
+                break
+        h.append((x, off))
+        if len(h) > self.MAX_HULL:
+            del h[1:-self.MAX_HULL // 2]
 
     @property
     def span_s(self) -> float:
         return self.last_x
 
     def ppm(self) -> float | None:
-        den = self.n * self.sxx - self.sx * self.sx
-        if self.n < 3 or den <= 0:
+        h = self.hull
+        if self.n < 3 or len(h) < 2:
             return None
-        return (self.n * self.sxy - self.sx * self.sy) / den * 1e6
+        xm = self.sx / self.n
+        for (x1, y1), (x2, y2) in zip(h, h[1:], strict=False):
+            if x2 >= xm:
+                return (y2 - y1) / (x2 - x1) * 1e6
+        (x1, y1), (x2, y2) = h[-2], h[-1]
+        return (y2 - y1) / (x2 - x1) * 1e6
 
 
 class RpmTrack:

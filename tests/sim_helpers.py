@@ -59,6 +59,7 @@ class SessionHost:
         self.events: list = []
         self.reboot_texts: list[tuple[float, str]] = []
         self.first_block_after: list[tuple[float, int]] = []  #: (sim time, sample_seq) of blocks
+        self.blocks: list[tuple[float, int, int]] = []  #: (sim time, first sample_seq, end sample_seq)
         self._seq = 0
         self._send(self.rules.start(stream.time_s))
 
@@ -69,11 +70,13 @@ class SessionHost:
 
     def run_until(self, t_s: float) -> None:
         while self.stream.time_s < t_s:
-            now = self.stream.time_s
-            items = self.decoder.feed(self.stream.produce_chunk())
+            data = self.stream.produce_chunk()
+            now = self.stream.time_s  # bytes are stamped when they have arrived, as the link does
+            items = self.decoder.feed(data)
             for it in items:
                 if isinstance(it, fp.GyroBatch):
                     self.first_block_after.append((now, int(it.sample_seq[0])))
+                    self.blocks.append((now, int(it.sample_seq[0]), int(it.sample_seq[-1]) + int(it.counts[-1])))
             send, reboots = self.rules.observe(items, now)
             self.reboot_texts += [(now, r) for r in reboots]
             self._send(send)
