@@ -26,8 +26,8 @@ from simulators.scenario import load_scenario  # noqa: E402
 from simulators.stream import SimStream, StreamOptions  # noqa: E402
 from tests.sim_helpers import SessionHost  # noqa: E402
 
-FAULTS = ["corrupt=0.0005", "corrupt=0.01", "drop=0.001", "drop=0.01", "drop=0.02", "garbage=5:40",
-          "stall=100:3", "disconnect=200:2", "reboot=300", "drift=5000"]
+FAULTS = ["drop=0.00002", "drop=0.00017", "drop=0.00035", "corrupt=0.0005", "corrupt=0.01", "drop=0.001",
+          "drop=0.01", "drop=0.02", "garbage=5:40", "stall=100:3", "disconnect=200:2", "reboot=300", "drift=5000"]
 
 
 def run(scenario: str, faults: list[str], seconds: float) -> tuple[SessionHost, float]:
@@ -51,15 +51,21 @@ def main() -> int:
     clean, _ = run(a.scenario, [], a.seconds)
     cg = groups(clean)
     print(f"{a.scenario}, {a.seconds:.0f} s simulated; clean: {clean.engine.frames} spectra, {len(cg)} crossing groups")
-    print(f"{'fault':18} {'real %':>7} {'filled %':>8} {'lost %':>7} {'spectra':>8} {'bridged':>7} {'groups':>7} "
+    print(f"{'fault':18} {'frames lost %':>13} {'real %':>7} {'filled %':>8} {'lost %':>7} {'spectra':>8} "
+          f"{'bridged':>7} {'groups':>7} "
           f"{'gaps':>5} {'reboots':>7} {'drift ppm':>10}")
-    for faults in [[f] for f in FAULTS] + [FAULTS[:1] + FAULTS[2:3] + FAULTS[5:]]:
+    every = ["corrupt=0.0005", "drop=0.001", "garbage=5:40", "stall=100:3", "disconnect=200:2", "reboot=300",
+             "drift=5000"]
+    for faults in [[f] for f in FAULTS] + [every]:
         h, _ = run(a.scenario, faults, a.seconds)
         s = h.assembler.stats
         total = s.samples + s.samples_lost
         drift = "-" if s.drift_ppm is None else f"{s.drift_ppm:.0f}"
-        name = faults[0] if len(faults) == 1 else "all but 2"
-        print(f"{name:18} {100 * (s.samples - 0) / total:7.2f} {100 * s.samples_filled / total:8.2f} "
+        name = faults[0] if len(faults) == 1 else "all (7)"
+        c = h.decoder.counters
+        frame_loss = c.frames_lost / max(1, c.frames_ok + c.frames_lost)
+        print(f"{name:18} {100 * frame_loss:13.2f} {100 * s.samples / total:7.2f} "
+              f"{100 * s.samples_filled / total:8.2f} "
               f"{100 * (s.samples_lost - s.samples_filled) / total:7.2f} "
               f"{h.engine.frames / clean.engine.frames:8.1%} {s.holes_bridged:7d} "
               f"{len(groups(h) & cg):3d}/{len(cg):<3d} {s.gaps:5d} {s.reboots:7d} {drift:>10}")

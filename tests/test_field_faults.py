@@ -575,3 +575,37 @@ def test_drift_from_a_link_with_random_latency_and_stalls():
             fit.add(float(h), float(d))
         assert fit.ppm() == pytest.approx(ppm, abs=15), ppm  # about 1 ms of envelope over 60 s
         assert len(fit.hull) < 64  # bounded: only the envelope's corners are kept
+
+
+def _rss_mb() -> float:
+    with open("/proc/self/statm") as f:
+        return int(f.read().split()[1]) * os.sysconf("SC_PAGE_SIZE") / 2**20
+
+
+def test_ten_minutes_of_every_fault_at_once_keeps_running_in_bounded_memory():
+    faults = ["corrupt=0.0005", "drop=0.001", "garbage=5:40", "stall=100:3", "reboot=300", "drift=2000"]
+    stream = SimStream(load_scenario("pipit3"), DeviceOptions(seed=3), FaultPlan.parse(faults),
+                       StreamOptions(realtime=False))
+    h = SessionHost(stream, Engine(EngineConfig(), load_profile("pipit3")))
+    h.run_until(120.0)
+    h.events.clear()
+    h.blocks.clear()
+    h.first_block_after.clear()
+    warm = _rss_mb()
+    h.run_until(600.0)
+    assert _rss_mb() - warm < 15  # the rings are full by 120 s; nothing may grow after
+    s = h.assembler.stats
+    assert s.reboots == h.rules.counts.reboots_seen == 1
+    assert s.drift_ppm == pytest.approx(2000, abs=50)
+    assert h.engine.frames > 0.95 * 600 / 0.064
+
+
+def test_profile_without_modes_warns_and_a_huge_one_is_refused_unread(tmp_path):
+    f = tmp_path / "none.toml"
+    f.write_text('[airframe]\nname = "x"\n')
+    (w,) = profile_warnings(load_profile(f))
+    assert str(f) in w and "no modes" in w
+    big = tmp_path / "big.toml"
+    big.write_text('[airframe]\nname = "x"\n' + "# padding\n" * 200_000)
+    with pytest.raises(ProfileError, match=r"big.toml: \d+ bytes; a profile file is at most 1000000 bytes"):
+        load_profile(big)
