@@ -34,6 +34,24 @@ BIN_HZ = 8000 / 2048
 FREQS = np.arange(1025) * BIN_HZ
 
 
+# The definitions as the README states them, written out here so that a change to the module's
+# own helpers (watch_half_band, exit_allowance) cannot move the yardstick with the code.
+def readme_half_band(f_n, zeta, bin_hz=None, estimated=False):
+    """Half-power band f_n zeta, widened by half a bin and by 0.5 % of f_n (1 % if estimated)."""
+    return zeta * f_n + 0.5 * (BIN_HZ if bin_hz is None else bin_hz) + (0.01 if estimated else 0.005) * f_n
+
+
+def readme_exit_allowance(f_n, zeta, estimated=False):
+    """The wider of a quarter of zeta f_n and 1.5 times the speed uncertainty (0.75 % of f_n)."""
+    return max(0.25 * zeta * f_n, 1.5 * (0.01 if estimated else 0.005) * f_n)
+
+
+@pytest.mark.parametrize("f_n, zeta, est", [(187.0, 0.025, False), (410.0, 0.08, False), (96.0, 0.01, True)])
+def test_the_module_bands_are_the_documented_ones(f_n, zeta, est):
+    assert float(watch_half_band(f_n, zeta, 3.9, est)) == pytest.approx(readme_half_band(f_n, zeta, 3.9, est))
+    assert float(exit_allowance(f_n, zeta, est)) == pytest.approx(readme_exit_allowance(f_n, zeta, est))
+
+
 def speeds(rpm_of_t, t_end: float, motors: int, spread: float, jitter: float, seed: int):
     """Readings (t, rpm (n, motors)) at 500 Hz: a common speed profile, each motor offset by up to
     +-spread/2, times (1 + AR(1) jitter of std ``jitter`` correlated over 50 ms)."""
@@ -109,7 +127,7 @@ def test_every_passage_is_nearing_then_crossing_inside_the_band_in_at_most_four_
     assert len(p) <= 4 and states[0] == "nearing" and "crossing" in states and states[-1] == "clear", states
     x = p[states.index("crossing")]
     assert x.t_s - p[0].t_s >= 0.3, f"nearing lead {x.t_s - p[0].t_s:.3f} s"
-    w = float(watch_half_band(f_n, zeta, BIN_HZ))
+    w = readme_half_band(f_n, zeta)
     # the crossing event's speed lies in the watch band it prints, and its order in the band
     assert x.watch_rpm[0] <= x.rpm <= x.watch_rpm[1]
     assert x.watch_rpm == pytest.approx((60 * (f_n - w) / k, 60 * (f_n + w) / k))
@@ -146,11 +164,11 @@ def test_a_steady_hold_changes_a_group_at_most_once_after_its_first_second(case)
     f_n, zeta, k, where, x, spread, jitter, seed = case
     rpm_mode = 60.0 * f_n / k
     assume(2000.0 <= rpm_mode <= 30000.0)
-    w = float(watch_half_band(f_n, zeta, BIN_HZ))
+    w = readme_half_band(f_n, zeta)
     margin = max(0.10, 3 * zeta) * f_n
     off_hz = {
         "band edge": w,
-        "exit edge": w + float(exit_allowance(f_n, zeta)),
+        "exit edge": w + readme_exit_allowance(f_n, zeta),
         "margin edge": margin,
         "exit margin": 1.15 * margin,
         "mode": 0.0,
@@ -171,7 +189,7 @@ def test_a_hold_just_past_the_exit_of_the_band_with_jitter_does_not_chatter():
     # every motor's order sits on the edge of the watch band plus its exit allowance, the worst
     # place for chatter: the group may rise once and then holds
     f_n, zeta = 187.0, 0.025
-    w = float(watch_half_band(f_n, zeta, BIN_HZ) + exit_allowance(f_n, zeta))
+    w = readme_half_band(f_n, zeta) + readme_exit_allowance(f_n, zeta)
     profile = Profile("t", 3, "bungee", (Mode("torsion", f_n, zeta, "roll"),))
     for seed in range(5):
         t, rpm = speeds(lambda tt: np.full(tt.shape, 60.0 * (f_n + w) / 2.0), 21.0, 4, 0.0, 0.002, seed)
@@ -298,7 +316,7 @@ def test_simulated_scripts_speak_once_per_passage_and_cross_only_in_the_band(sce
     # the observed bands lie inside the watch bands: 60 (f_n -+ w) / k
     for b in eng.bands():
         mode = next(m for m in eng.profile.modes if m.name == b.mode)
-        w = float(watch_half_band(mode.freq_hz, mode.damping_ratio, eng.spec.bin_hz))
+        w = readme_half_band(mode.freq_hz, mode.damping_ratio, eng.spec.bin_hz)
         lo, hi = 60 * (mode.freq_hz - w) / b.order, 60 * (mode.freq_hz + w) / b.order
         assert lo - 1e-6 <= b.rpm_low <= b.rpm_high <= hi + 1e-6
 

@@ -52,6 +52,13 @@ class FedRun(LiveRun):
         self.index += n
 
 
+async def settled(pilot):
+    """Draw the newest snapshot now (what the screen's timer does) and let the app process it:
+    no waiting on the wall clock."""
+    pilot.app.tick(force=True)
+    await pilot.pause()
+
+
 def text(app, wid):
     return app.query_one(wid).text
 
@@ -63,7 +70,7 @@ def test_keys_change_what_they_should(size):
         run.feed(2.0, lambda t: 6000.0)
         app = SpinrigApp(run, start=False)
         async with app.run_test(size=size) as pilot:
-            await pilot.pause(0.2)
+            await settled(pilot)
             spec = app.query_one(SpectrumView)
             await pilot.press("space")
             assert run.frozen_snapshot is not None
@@ -103,7 +110,7 @@ def test_mode_panel_shows_the_crossing_as_the_sweep_goes_through():
         async with app.run_test(size=(100, 30)) as pilot:
             for _ in range(40):  # 1x sweeps 100 -> 200 Hz through the 150 Hz mode
                 run.feed(0.1, lambda t: 6000.0 + 1500.0 * t)
-                await pilot.pause(0.06)
+                await settled(pilot)
                 states.append(text(app, "#modes"))
             await pilot.press("q")
         marks = [">> near" if ">> near" in s else "!! CROSS" if "!! CROSS" in s else "ok" for s in states]
@@ -121,7 +128,7 @@ def test_cursor_reads_the_frequency_of_a_known_tone():
         run.feed(1.0, lambda t: 0.0, tone_hz=234.0)
         app = SpinrigApp(run, start=False)
         async with app.run_test(size=(120, 36)) as pilot:
-            await pilot.pause(0.2)
+            await settled(pilot)
             spec = app.query_one(SpectrumView)
             await pilot.press(*["shift+left"] * 10)
             assert spec.cursor_col == 0
@@ -147,7 +154,7 @@ def test_marking_a_mode_writes_a_valid_profile(tmp_path):
         run.feed(1.0, lambda t: 0.0, tone_hz=300.0)
         app = SpinrigApp(run, start=False)
         async with app.run_test(size=(120, 36)) as pilot:
-            await pilot.pause(0.2)
+            await settled(pilot)
             spec = app.query_one(SpectrumView)
             await pilot.press(*["shift+left"] * 10)
             while spec.cursor_frequency() is not None and spec.cursor_frequency() < 299.0:
@@ -168,8 +175,11 @@ def test_a_slow_screen_loses_no_samples():
         run = LiveRun("sim://pipit3?fast=1&seed=2", PROFILE)
         app = SpinrigApp(run, fps=2.0)
         async with app.run_test(size=(80, 24)) as pilot:
-            for _ in range(10):
-                await pilot.pause(0.2)
+            # wait (bounded, for a hang only) until the fast stream has delivered two seconds of data
+            for _ in range(600):
+                if run.session.assembler.stats.samples > 8000:
+                    break
+                await pilot.pause(0.05)
             await pilot.press("q")
         assert run.link.health.overruns == 0
         assert run.session.assembler.stats.samples_lost == 0
@@ -196,7 +206,7 @@ def _fixed_app():
 @pytest.mark.parametrize("size", [(80, 24), (160, 48)])
 def test_main_screen_snapshot(snap_compare, size):
     async def settle(pilot):
-        await pilot.pause(0.3)
+        await settled(pilot)
 
     assert snap_compare(_fixed_app(), terminal_size=size, run_before=settle)
 
@@ -208,7 +218,7 @@ def test_event_log_gives_one_line_per_group_change_with_its_motors():
         async with app.run_test(size=(160, 48)) as pilot:
             for _ in range(30):  # both motors sweep 1x through the 150 Hz mode together
                 run.feed(0.1, lambda t: 6000.0 + 1500.0 * t)
-                await pilot.pause(0.05)
+                await settled(pilot)
             log = app.query_one("#events").text
             await pilot.press("q")
         crossings = [e for e in run.events if getattr(e, "state", None) == "crossing"]

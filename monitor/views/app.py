@@ -177,7 +177,9 @@ class SpinrigApp(App):
         self.messages.append(text)
         self.query_one("#events", EventLog).write(f"{self.clock()} {text}")
 
-    def tick(self) -> None:
+    def tick(self, force: bool = False) -> None:
+        """Draw the newest snapshot (the screen's timer calls this at ``fps``). The waterfall and the
+        text panels are throttled to their own rates by the monotonic clock unless ``force``."""
         run = self.live
         snap = run.snapshot()
         spec = self.query_one(SpectrumView)
@@ -186,14 +188,14 @@ class SpinrigApp(App):
             self._last_frames = snap.frames
             spec.update_snapshot(snap, list(run.profile.modes))
             now = time.monotonic()
-            if run.frozen_snapshot is None and now - self._last_wf >= WATERFALL_PERIOD_S:
+            if run.frozen_snapshot is None and (force or now - self._last_wf >= WATERFALL_PERIOD_S):
                 self._last_wf = now
                 rows, marks = run.engine.waterfall_rows(self._wf_seen)
                 self._wf_seen = snap.waterfall_total
                 wf.add_rows(rows, marks, snap.freqs)
         self._events()
         now = time.monotonic()
-        if now - self._last_panels >= PANEL_PERIOD_S:
+        if force or now - self._last_panels >= PANEL_PERIOD_S:
             self._last_panels = now
             self._panels(snap)
 
