@@ -127,6 +127,10 @@ def test_every_passage_is_nearing_then_crossing_inside_the_band_in_at_most_four_
     assert len(p) <= 4 and states[0] == "nearing" and "crossing" in states and states[-1] == "clear", states
     x = p[states.index("crossing")]
     assert x.t_s - p[0].t_s >= 0.3, f"nearing lead {x.t_s - p[0].t_s:.3f} s"
+    # README: nearing holds while an order is inside 1.15 times the margin (max(10 %, 3 zeta) f_n),
+    # so the group clears only once every motor's order is beyond it
+    margin = max(0.10, 3 * zeta) * f_n
+    assert min(abs(m.order_hz - f_n) for m in p[-1].motors) >= 1.15 * margin
     w = readme_half_band(f_n, zeta)
     # the crossing event's speed lies in the watch band it prints, and its order in the band
     assert x.watch_rpm[0] <= x.rpm <= x.watch_rpm[1]

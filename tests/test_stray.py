@@ -111,11 +111,15 @@ def test_synthetic_peak_under_the_threshold_is_not_stray():
 
 
 def test_synthetic_peak_with_the_speed_held_is_not_stray():
-    psd = _frames(60, seed=4)
-    psd[:, 100, 1] += 0.05
+    # 351.6 Hz sits halfway between orders 3 and 4 of 6000 RPM (300 and 400 Hz), clear of both:
+    # only the rule "the speed must change while the peak holds still" keeps it out; the same peak
+    # under a 12 % speed ramp (the control; orders 3 and 4 stay clear of it) is reported
     t = np.arange(60) * 0.2
-    rpm = np.full((60, 2), 6000.0)
-    assert StrayPeakFinder(Profile(), FREQS).update_many(t, psd, rpm) == []
+    for rpm, reports in ((np.full((60, 2), 6000.0), 0), (np.stack([6000.0 + 60.0 * t] * 2, axis=1), 1)):
+        psd = _frames(60, seed=4)
+        psd[:, 90, 1] += 0.05
+        out = StrayPeakFinder(Profile(), FREQS).update_many(t, psd, rpm)
+        assert len(out) == reports, (rpm[-1, 0], out)
 
 
 def test_an_aliased_order_is_not_stray():
