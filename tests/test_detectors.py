@@ -137,19 +137,6 @@ def test_rpm_from_the_spectrum_within_one_percent_without_telemetry():
     assert len(errors) > 100 and np.median(errors) < 0.01 and np.percentile(errors, 90) < 0.02
 
 
-def test_a_loose_stack_shows_as_one_stray_peak():
-    good = load_profile(PROFILES / "wren5.toml")
-    eng, events, _ = _sim_engine("wren5_loose_stack", good, 40.0)
-    strays = eng.stray_peaks()
-    near = [p for p in strays if abs(p.freq_hz - 96.0) < 5.0]
-    assert len(near) == 1 and len([e for e in events if getattr(e, "freq_hz", None) is not None]) == 1
-    # the stray search runs on every sixth frame by frame index, however the detectors are batched
-    eng0, events0, _ = _sim_engine("wren5_loose_stack", good, 40.0, detect_every_s=0.0)
-    assert [p.as_dict() for p in eng0.stray_peaks()] == [p.as_dict() for p in strays]
-    eng2, _, _ = _sim_engine("wren5", good, 40.0)
-    assert not [p for p in eng2.stray_peaks() if abs(p.freq_hz - 96.0) < 5.0]
-
-
 @pytest.mark.parametrize(
     ("data", "match"),
     [

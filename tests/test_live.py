@@ -145,6 +145,10 @@ def test_export_csv_then_watch_the_csv(tmp_path):
     assert head == "time_s,gyro_roll_dps,gyro_pitch_dps,gyro_yaw_dps,rpm_1,rpm_2,rpm_3,rpm_4"
     out = spinrig("watch", str(csv), "--headless", "--profile", str(PROFILE), "--json")
     assert out.returncode == 0, out.stderr
+    rows = len(csv.read_text().splitlines()) - 1
+    summary = json.loads(out.stdout.splitlines()[-1])
+    # every sample came back: 256 ms frames (2048 samples) every 64 ms (512) over all the rows
+    assert summary["kind"] == "summary" and summary["frames"] == (rows - 2048) // 512 + 1
     assert spinrig("export", str(cap), "--npz").returncode == 0
     z = np.load(cap.with_suffix(".npz"))
     assert z["gyro_dps"].shape[1] == 3 and z["rpm"].shape[1] == 4 and z["time_s"].size == z["gyro_dps"].shape[0]

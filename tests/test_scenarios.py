@@ -105,4 +105,4 @@ def test_mutated_scenarios_load_or_fail_cleanly(data):
     except ScenarioError as exc:
         assert str(exc).startswith("m.toml: ") and "\n" not in str(exc)
     else:
-        assert sc.modes
+        assert sc.modes and all(m.freq_hz > 0 and 0 < m.damping_ratio < 1 for m in sc.modes)

@@ -57,7 +57,8 @@ def test_frames_equal_short_time_fft_and_welch(cuts, shape):
 
 @pytest.mark.parametrize(
     ("name", "cg", "enbw"),
-    # F. J. Harris, Proc. IEEE 66(1), 1978, Table 1 (REFERENCES.md, computed for periodic windows)
+    # Hann: F. J. Harris, Proc. IEEE 66(1), 1978, Table 1. Flat-top: scipy.signal.windows.flattop's
+    # coefficients (D'Antona and Ferrero 2006), as computed in REFERENCES.md for periodic windows
     [("hann", 0.500, 1.500), ("flattop", 0.216, 3.770)],
 )
 def test_window_coherent_gain_and_enbw(name, cg, enbw):
@@ -81,7 +82,8 @@ def test_tone_amplitude_is_coherent_gain_corrected(name):
 
 
 def test_flattop_reads_amplitude_between_bins():
-    # Harris 1978 / REFERENCES: flat-top scalloping loss about 0.01 dB
+    # REFERENCES.md (scipy's flat-top coefficients, D'Antona and Ferrero 2006): scalloping loss
+    # about 0.01 dB, so a tone half-way between bins reads its amplitude within 0.02 dB
     cfg = SpectrumConfig(FS, 2048 / FS, 0.5, "flattop")
     t = np.arange(2048) / FS
     x = np.stack([2.0 * np.sin(2 * np.pi * 60.5 * cfg.bin_hz * t)] * 3, axis=1)
