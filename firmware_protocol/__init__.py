@@ -13,7 +13,6 @@ from .constants import (
     MAX_PAYLOAD,
     PROTOCOL_VERSION,
     THROTTLE_FULL,
-    AckResult,
     AxisConvention,
     BenchState,
     Fault,
@@ -21,13 +20,14 @@ from .constants import (
     LogLevel,
     MessageType,
     MotorFlags,
+    Outcome,
     StopReason,
 )
 from .decoder import DecodeCounters, GyroBatch, MotorBatch, Received, StreamDecoder
 from .framing import FrameError, crc16, encode_frame, encode_raw, frame_body, unstuff_body
 from .messages import (
     ArmBench,
-    CommandAck,
+    CommandOutcome,
     DeviceInfo,
     DeviceStatus,
     GyroBlock,
@@ -49,9 +49,9 @@ from .messages import (
 __all__ = [
     "ERROR_BURST_FRAMES", "ERROR_BURST_WINDOW_MS",
     "MAX_ENCODED", "MAX_GYRO_BATCH", "MAX_MOTORS", "MAX_PAYLOAD", "PROTOCOL_VERSION", "THROTTLE_FULL",
-    "AckResult", "AxisConvention", "BenchState", "Fault", "FilterFlags", "LogLevel", "MessageType",
+    "Outcome", "AxisConvention", "BenchState", "Fault", "FilterFlags", "LogLevel", "MessageType",
     "MotorFlags", "StopReason", "DecodeCounters", "GyroBatch", "MotorBatch", "Received", "StreamDecoder", "FrameError",
-    "crc16", "encode_frame", "encode_raw", "frame_body", "unstuff_body", "ArmBench", "CommandAck",
+    "crc16", "encode_frame", "encode_raw", "frame_body", "unstuff_body", "ArmBench", "CommandOutcome",
     "DeviceInfo", "DeviceStatus", "GyroBlock", "HostHeartbeat", "LogText", "MalformedPayload", "Message",
     "MotorEntry", "MotorState", "RequestInfo", "SetThrottle", "SimTap", "StopMotors", "StreamControl",
     "decode_payload", "encode_payload",

@@ -55,7 +55,7 @@ class MessageType(IntEnum):
     MOTOR_STATE = 0x03
     DEVICE_STATUS = 0x04
     LOG_TEXT = 0x05
-    COMMAND_ACK = 0x06
+    COMMAND_OUTCOME = 0x06
 
     REQUEST_INFO = 0x41
     STREAM_CONTROL = 0x42
@@ -103,7 +103,7 @@ class Fault(IntFlag):
     HEARTBEAT_LOST = 1 << 0
     STOP_COMMAND = 1 << 1
     PROTOCOL_ERRORS = 1 << 2
-    THROTTLE_LIMITED = 1 << 3
+    THROTTLE_CAPPED = 1 << 3
     SENSOR_FAULT = 1 << 4
     SUPPLY_LOW = 1 << 5
     OVERCURRENT = 1 << 6
@@ -112,7 +112,7 @@ class Fault(IntFlag):
     MOTOR_TELEMETRY_LOST = 1 << 9
 
 
-class AckResult(IntEnum):
+class Outcome(IntEnum):
     OK = 0
     NOT_ARMED = 1
     BAD_NONCE = 2

@@ -191,7 +191,7 @@ class StreamDecoder:
         self._boot_id: int | None = None
         self._decoders = {t: f for t, f in DECODERS.items() if known_types is None or t in known_types}
         #: (type, seq, reason) of recent frames with a valid CRC but a bad payload, newest last;
-        #: a device answers these with COMMAND_ACK MALFORMED. Bounded; the consumer may clear it.
+        #: a device answers these with COMMAND_OUTCOME MALFORMED. Bounded; the consumer may clear it.
         self.rejected_payloads: deque[tuple[int, int, str]] = deque(maxlen=64)
 
     @property

@@ -64,14 +64,14 @@ class DeviceInfo:
     sens_den: int = 10  #: gyro sensitivity denominator
     full_scale_dps: int = 2000  #: gyro full scale, deg/s
     filter_flags: int = 0  #: FilterFlags; 0 means raw samples
-    lowpass_hz: int = 0  #: device low-pass cutoff, Hz (0 = none)
-    notch_hz: int = 0  #: static notch centre, Hz (0 = none)
+    onboard_cutoff_hz: int = 0  #: device low-pass cutoff, Hz (0 = none)
+    onboard_notch_centre_hz: int = 0  #: static notch centre, Hz (0 = none)
     antialias_hz: int = 0  #: sensor's own anti-alias bandwidth, Hz (0 = unknown)
     motor_count: int = 4
     pole_pairs: int = 7  #: motor pole pairs (magnets / 2)
     heartbeat_timeout_ms: int = 500
     max_batch: int = 16  #: largest sample count the device puts in one GYRO_BLOCK
-    throttle_limit: int = 8000  #: highest throttle the device accepts, 0.01 %
+    throttle_ceiling: int = 8000  #: highest throttle the device accepts, 0.01 %
     motor_state_rate_hz: int = 500
     board_id: str = ""  #: printable ASCII, at most 32 characters
 
@@ -103,7 +103,7 @@ class DeviceInfo:
         _check_range("motor_count", self.motor_count, 0, MAX_MOTORS)
         _check_range("pole_pairs", self.pole_pairs, 1, 255)
         _check_range("max_batch", self.max_batch, 1, MAX_GYRO_BATCH)
-        _check_range("throttle_limit", self.throttle_limit, 0, THROTTLE_FULL)
+        _check_range("throttle_ceiling", self.throttle_ceiling, 0, THROTTLE_FULL)
         text = self.board_id.encode("ascii", "strict")
         if len(text) > MAX_BOARD_ID or any(c < 0x20 or c > 0x7E for c in text):
             raise ValueError(f"board_id={self.board_id!r}: at most {MAX_BOARD_ID} printable ASCII")
@@ -174,16 +174,16 @@ class LogText:
     text: str  #: UTF-8, at most 200 bytes
 
 
-_ACK = struct.Struct("<BBBI")
+_OUTCOME = struct.Struct("<BBBI")
 
 
 @dataclass(frozen=True, slots=True)
-class CommandAck:
-    """COMMAND_ACK (0x06): the device's answer to one host command frame."""
+class CommandOutcome:
+    """COMMAND_OUTCOME (0x06): the device's answer to one host command frame."""
 
     command_type: int  #: type code of the command answered
     command_seq: int  #: frame seq of the command answered
-    result: int  #: AckResult
+    result: int  #: Outcome
     detail: int = 0  #: result-specific (nonce, limit, fault bits)
 
 
@@ -250,7 +250,7 @@ Message = (
     | MotorState
     | DeviceStatus
     | LogText
-    | CommandAck
+    | CommandOutcome
     | RequestInfo
     | StreamControl
     | ArmBench
@@ -266,7 +266,7 @@ TYPE_OF: dict[type, MessageType] = {
     MotorState: MessageType.MOTOR_STATE,
     DeviceStatus: MessageType.DEVICE_STATUS,
     LogText: MessageType.LOG_TEXT,
-    CommandAck: MessageType.COMMAND_ACK,
+    CommandOutcome: MessageType.COMMAND_OUTCOME,
     RequestInfo: MessageType.REQUEST_INFO,
     StreamControl: MessageType.STREAM_CONTROL,
     ArmBench: MessageType.ARM_BENCH,
@@ -306,14 +306,14 @@ def encode_payload(msg: Message) -> bytes:
                 msg.sens_den,
                 msg.full_scale_dps,
                 msg.filter_flags,
-                msg.lowpass_hz,
-                msg.notch_hz,
+                msg.onboard_cutoff_hz,
+                msg.onboard_notch_centre_hz,
                 msg.antialias_hz,
                 msg.motor_count,
                 msg.pole_pairs,
                 msg.heartbeat_timeout_ms,
                 msg.max_batch,
-                msg.throttle_limit,
+                msg.throttle_ceiling,
                 msg.motor_state_rate_hz,
                 len(text),
             )
@@ -336,8 +336,8 @@ def encode_payload(msg: Message) -> bytes:
         if len(text) > MAX_LOG_TEXT:
             raise ValueError(f"log text of {len(text)} bytes: at most {MAX_LOG_TEXT}")
         return bytes([msg.level]) + text
-    if isinstance(msg, CommandAck):
-        return _ACK.pack(msg.command_type, msg.command_seq, msg.result, msg.detail)
+    if isinstance(msg, CommandOutcome):
+        return _OUTCOME.pack(msg.command_type, msg.command_seq, msg.result, msg.detail)
     if isinstance(msg, RequestInfo):
         return b""
     if isinstance(msg, StreamControl):
@@ -392,7 +392,7 @@ def _decode_device_info(p: bytes) -> DeviceInfo:
         ("motor_count", 0, MAX_MOTORS),
         ("pole_pairs", 1, None),
         ("max_batch", 1, MAX_GYRO_BATCH),
-        ("throttle_limit", 0, THROTTLE_FULL),
+        ("throttle_ceiling", 0, THROTTLE_FULL),
     ):
         value = getattr(info, name)
         if value < lo or (hi is not None and value > hi):
@@ -433,9 +433,9 @@ def _decode_log(p: bytes) -> LogText:
     return LogText(p[0], p[1:].decode("utf-8", "replace"))
 
 
-def _decode_ack(p: bytes) -> CommandAck:
-    _need(p, "COMMAND_ACK", _ACK.size)
-    return CommandAck(*_ACK.unpack_from(p))
+def _decode_outcome(p: bytes) -> CommandOutcome:
+    _need(p, "COMMAND_OUTCOME", _OUTCOME.size)
+    return CommandOutcome(*_OUTCOME.unpack_from(p))
 
 
 def _decode_request_info(p: bytes) -> RequestInfo:
@@ -489,7 +489,7 @@ DECODERS = {
     MessageType.MOTOR_STATE: _decode_motor_state,
     MessageType.DEVICE_STATUS: _decode_status,
     MessageType.LOG_TEXT: _decode_log,
-    MessageType.COMMAND_ACK: _decode_ack,
+    MessageType.COMMAND_OUTCOME: _decode_outcome,
     MessageType.REQUEST_INFO: _decode_request_info,
     MessageType.STREAM_CONTROL: _decode_stream,
     MessageType.ARM_BENCH: _decode_arm,

@@ -18,7 +18,7 @@ from .framing import encode_frame, frame_body
 from .messages import (
     TYPE_OF,
     ArmBench,
-    CommandAck,
+    CommandOutcome,
     DeviceInfo,
     DeviceStatus,
     GyroBlock,
@@ -104,7 +104,7 @@ def examples() -> list[tuple[str, int, object]]:
         ("MOTOR_STATE", 2, MotorState(125_500, (MotorEntry(84_000, 3500, 1), MotorEntry(83_650, 3500, 1)))),
         ("DEVICE_STATUS", 3, DeviceStatus(126_000, 0x1A2B3C4D, 2, 0, 16_800, 1_250, 42, 0, 1)),
         ("LOG_TEXT", 4, LogText(1, "armed")),
-        ("COMMAND_ACK", 5, CommandAck(0x43, 7, 0, 0x5EED1234)),
+        ("COMMAND_OUTCOME", 5, CommandOutcome(0x43, 7, 0, 0x5EED1234)),
         ("REQUEST_INFO", 6, RequestInfo()),
         ("STREAM_CONTROL", 7, StreamControl(1)),
         ("ARM_BENCH", 7, ArmBench(0x5EED1234)),

@@ -5,7 +5,8 @@ The assembler takes the decoder's items in stream order and produces:
 - :class:`Samples`: gyro rates in deg/s (float32, FRD axes), a continuous run of one segment;
 - :class:`Gap`: the series broke (samples lost by sequence number, a device reboot, a
   reconnect); the next samples open a new segment;
-- :class:`MotorUpdate`: mechanical RPM (electrical RPM / pole pairs, Microchip AN885), throttle and
+- :class:`MotorUpdate`: mechanical RPM (electrical RPM / pole pairs: p pole pairs make p
+  electrical cycles per turn), throttle and
   telemetry flags of every motor, with times;
 - :class:`DeviceChange`: a DEVICE_INFO (at connect, after a reboot).
 

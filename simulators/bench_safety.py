@@ -11,11 +11,11 @@ from collections import deque
 from firmware_protocol import (
     ERROR_BURST_FRAMES,
     ERROR_BURST_WINDOW_MS,
-    AckResult,
     ArmBench,
     BenchState,
     Fault,
     HostHeartbeat,
+    Outcome,
     RequestInfo,
     SetThrottle,
     StopMotors,
@@ -26,9 +26,9 @@ BLOCKING_ARM = Fault.SENSOR_FAULT | Fault.SUPPLY_LOW | Fault.OVERCURRENT
 
 
 class BenchSafety:
-    def __init__(self, heartbeat_timeout_ms: int, throttle_limit: int, motor_count: int):
+    def __init__(self, heartbeat_timeout_ms: int, throttle_ceiling: int, motor_count: int):
         self.heartbeat_timeout_ms = heartbeat_timeout_ms
-        self.throttle_limit = min(int(throttle_limit), 10000)
+        self.throttle_ceiling = min(int(throttle_ceiling), 10000)
         self.motor_count = motor_count
         self.armed = False
         self.nonce = 0
@@ -50,45 +50,45 @@ class BenchSafety:
         self.faults |= int(fault_bits)
 
     def command(self, msg, now_ms: float) -> tuple[int, int]:
-        """Apply one valid host command; returns (AckResult, detail)."""
+        """Apply one valid host command; returns (Outcome, detail)."""
         if isinstance(msg, ArmBench):
-            if self.throttle_limit == 0 or self.motor_count == 0:
-                return AckResult.UNSUPPORTED, 0  # motors reported (or none) but not driven here
+            if self.throttle_ceiling == 0 or self.motor_count == 0:
+                return Outcome.UNSUPPORTED, 0  # motors reported (or none) but not driven here
             if self.faults & BLOCKING_ARM:
-                return AckResult.REFUSED_FAULT, self.faults
+                return Outcome.REFUSED_FAULT, self.faults
             if self.armed and self.nonce != msg.nonce:
                 self.throttle = [0] * self.motor_count  # a new session never inherits spinning motors
             self.armed = True
             self.nonce = msg.nonce
             self.faults = 0
             self.last_heartbeat_ms = now_ms
-            return AckResult.OK, msg.nonce
+            return Outcome.OK, msg.nonce
         if isinstance(msg, SetThrottle):
             if not self.armed:
-                return AckResult.NOT_ARMED, 0
+                return Outcome.NOT_ARMED, 0
             if msg.nonce != self.nonce:
-                return AckResult.BAD_NONCE, 0
+                return Outcome.BAD_NONCE, 0
             if len(msg.throttles) != self.motor_count:
-                return AckResult.BAD_MOTOR_COUNT, self.motor_count
-            limited = any(t > self.throttle_limit for t in msg.throttles)
-            self.throttle = [min(int(t), self.throttle_limit) for t in msg.throttles]
+                return Outcome.BAD_MOTOR_COUNT, self.motor_count
+            limited = any(t > self.throttle_ceiling for t in msg.throttles)
+            self.throttle = [min(int(t), self.throttle_ceiling) for t in msg.throttles]
             self.last_heartbeat_ms = now_ms
             if limited:
-                self.faults |= Fault.THROTTLE_LIMITED
-                return AckResult.LIMITED, self.throttle_limit
-            return AckResult.OK, 0
+                self.faults |= Fault.THROTTLE_CAPPED
+                return Outcome.LIMITED, self.throttle_ceiling
+            return Outcome.OK, 0
         if isinstance(msg, StopMotors):
             self.stop(Fault.STOP_COMMAND)
-            return AckResult.OK, 0
+            return Outcome.OK, 0
         if isinstance(msg, HostHeartbeat):
             if self.armed:
                 if msg.nonce != self.nonce:
-                    return AckResult.BAD_NONCE, 0
+                    return Outcome.BAD_NONCE, 0
                 self.last_heartbeat_ms = now_ms
-            return AckResult.OK, 0
+            return Outcome.OK, 0
         if isinstance(msg, RequestInfo | StreamControl):
-            return AckResult.OK, 0
-        return AckResult.UNSUPPORTED, 0
+            return Outcome.OK, 0
+        return Outcome.UNSUPPORTED, 0
 
     def bad_frame(self, now_ms: float) -> bool:
         """A bad host frame at ``now_ms``; True when it completes an error burst (motors stopped)."""

@@ -90,7 +90,7 @@ class SimDevice:
         self.sample_seq = 0
         self.seq = 0
         s = self.scenario
-        self.safety = BenchSafety(s.device.heartbeat_timeout_ms, s.device.throttle_limit, s.motors.count)
+        self.safety = BenchSafety(s.device.heartbeat_timeout_ms, s.device.throttle_ceiling, s.motors.count)
         self.host_control = False  # a host armed in this boot: the script no longer drives the motors
         self.streaming = self.options.stream_at_boot
         self.decoder = fp.StreamDecoder(known_types=HOST_TYPES)
@@ -121,7 +121,7 @@ class SimDevice:
             pole_pairs=s.motors.pole_pairs,
             heartbeat_timeout_ms=s.device.heartbeat_timeout_ms,
             max_batch=g.block,
-            throttle_limit=s.device.throttle_limit,
+            throttle_ceiling=s.device.throttle_ceiling,
             motor_state_rate_hz=s.device.motor_state_rate_hz,
             board_id=s.device.board_id,
         )
@@ -160,7 +160,7 @@ class SimDevice:
         for _ in range(self.decoder.counters.bad_frames - before):
             self.safety.bad_frame(now_ms)
         for t, seq, _reason in self.decoder.rejected_payloads:
-            self._emit(fp.CommandAck(t, seq, fp.AckResult.MALFORMED, 0))
+            self._emit(fp.CommandOutcome(t, seq, fp.Outcome.MALFORMED, 0))
             self.safety.bad_frame(now_ms)
         self.decoder.rejected_payloads.clear()
         self._inbox.extend(i for i in items if isinstance(i, fp.Received))
@@ -172,15 +172,15 @@ class SimDevice:
         type_code = fp.messages.TYPE_OF[type(msg)]
         if isinstance(msg, fp.SimTap):
             self.physics.tap(msg.target, msg.strength)
-            self._emit(fp.CommandAck(type_code, item.seq, fp.AckResult.OK, 0))
+            self._emit(fp.CommandOutcome(type_code, item.seq, fp.Outcome.OK, 0))
             return
         result, detail = self.safety.command(msg, now_ms)
-        if isinstance(msg, fp.ArmBench) and result == fp.AckResult.OK:
+        if isinstance(msg, fp.ArmBench) and result == fp.Outcome.OK:
             self.host_control = True
             self._applied[:] = 0
-        if isinstance(msg, fp.HostHeartbeat) and result == fp.AckResult.OK:
+        if isinstance(msg, fp.HostHeartbeat) and result == fp.Outcome.OK:
             return  # heartbeats are answered only when refused
-        self._emit(fp.CommandAck(type_code, item.seq, int(result), int(detail)))
+        self._emit(fp.CommandOutcome(type_code, item.seq, int(result), int(detail)))
         if isinstance(msg, fp.RequestInfo):
             self._emit(self.info)
         elif isinstance(msg, fp.StreamControl):
@@ -198,7 +198,7 @@ class SimDevice:
         if not self.options.script or not s.script:
             return np.zeros(s.motors.count)
         thr = s.script_throttle(t_s) * np.asarray(s.script_motors) * 10000.0
-        return np.minimum(thr, s.device.throttle_limit)
+        return np.minimum(thr, s.device.throttle_ceiling)
 
     def step(self) -> list[tuple[float, bytes]]:
         """Simulate one chunk; returns [(true time s, frame bytes)] in order."""
@@ -216,7 +216,7 @@ class SimDevice:
             stopping = target == 0
             delta = np.clip(target - self._applied, -step_limit, step_limit)
             self._applied = np.where(stopping, 0.0, self._applied + delta)
-            self._applied = np.minimum(self._applied, s.device.throttle_limit)
+            self._applied = np.minimum(self._applied, s.device.throttle_ceiling)
             seg[:, j] = self._applied
         t0 = self.time_s
         n = self.period_samples * n_per

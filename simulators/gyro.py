@@ -2,8 +2,9 @@
 quantisation at the declared sensitivity and clipping at full scale.
 
 White noise of density N (deg/s/sqrt(Hz), one-sided) sampled at fs has standard deviation
-N sqrt(fs / 2) (its one-sided PSD level 2 s^2 / fs equals N^2). MPU-6000 product specification:
-0.005 deg/s/sqrt(Hz); 16.4 LSB/(deg/s) at +-2000 deg/s.
+N sqrt(fs / 2) (its one-sided PSD level 2 s^2 / fs equals N^2). Default values, common practice
+for MEMS rate gyros (recalled, not from a source): 0.005 deg/s/sqrt(Hz); a 16-bit output over
++-2000 deg/s, 2^15 / 2000 = 16.384 counts per deg/s, commonly rounded to 16.4.
 """
 
 from __future__ import annotations

@@ -58,11 +58,11 @@ class MotorSpec:
 @dataclass(frozen=True)
 class GyroSpec:
     rate_hz: float = 8000.0  #: output data rate
-    sens_num: int = 164  #: counts per deg/s = sens_num / sens_den (MPU-6000: 16.4 at +-2000)
+    sens_num: int = 164  #: counts per deg/s = sens_num / sens_den (16-bit at +-2000 deg/s: 2^15 / 2000, ~16.4)
     sens_den: int = 10
     full_scale_dps: int = 2000
     antialias_hz: float = 2000.0  #: sensor's own anti-alias low-pass cutoff
-    noise_density_dps: float = 0.005  #: deg/s/sqrt(Hz) (MPU-6000 product spec: 0.005)
+    noise_density_dps: float = 0.005  #: deg/s/sqrt(Hz) (a common MEMS gyro figure; recalled, common practice)
     block: int = 16  #: samples per GYRO_BLOCK
 
     @property
@@ -74,7 +74,7 @@ class GyroSpec:
 class DeviceSpec:
     board_id: str = "SIM"
     heartbeat_timeout_ms: int = 500
-    throttle_limit: int = 8000  #: 0.01 %
+    throttle_ceiling: int = 8000  #: 0.01 %
     motor_state_rate_hz: int = 500
     status_rate_hz: int = 10
     slew_per_s: float = 20000.0  #: throttle slew limit, 0.01 % per second
@@ -228,7 +228,7 @@ def parse_scenario(data: dict, src: str = "<memory>", name: str = "scenario") ->
     d = _fields(
         src, "device", _table(src, "device", top.get("device", {})), DeviceSpec,
         {
-            "heartbeat_timeout_ms": (10, 65535, True), "throttle_limit": (0, 10000, True),
+            "heartbeat_timeout_ms": (10, 65535, True), "throttle_ceiling": (0, 10000, True),
             "motor_state_rate_hz": (1, 4000, True), "status_rate_hz": (5, 100, True),
             "slew_per_s": (1, 1e7, False), "supply_mv": (0, 65535, True), "control_period_s": (0.0005, 0.05, False),
         },

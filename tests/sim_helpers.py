@@ -38,8 +38,8 @@ class Host:
     def messages(self, cls) -> list:
         return [r.message for r in self.received if isinstance(r.message, cls)]
 
-    def acks(self) -> list[fp.CommandAck]:
-        return self.messages(fp.CommandAck)
+    def outcomes(self) -> list[fp.CommandOutcome]:
+        return self.messages(fp.CommandOutcome)
 
 
 class SessionHost:

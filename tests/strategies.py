@@ -24,14 +24,14 @@ device_info = st.builds(
     sens_den=st.integers(1, 0xFFFFFFFF),
     full_scale_dps=u16,
     filter_flags=u8,
-    lowpass_hz=u16,
-    notch_hz=u16,
+    onboard_cutoff_hz=u16,
+    onboard_notch_centre_hz=u16,
     antialias_hz=u16,
     motor_count=st.integers(0, 8),
     pole_pairs=st.integers(1, 255),
     heartbeat_timeout_ms=u16,
     max_batch=st.integers(1, 40),
-    throttle_limit=throttle,
+    throttle_ceiling=throttle,
     motor_state_rate_hz=u16,
     board_id=board_ids,
 )
@@ -50,7 +50,7 @@ device_status = st.builds(fp.DeviceStatus, u32, u32, u8, u16, u16, u16, u16, u16
 log_text = st.builds(
     fp.LogText, level=u8, text=st.text(max_size=50).filter(lambda s: len(s.encode("utf-8")) <= 200)
 )
-command_ack = st.builds(fp.CommandAck, u8, u8, u8, u32)
+command_outcome = st.builds(fp.CommandOutcome, u8, u8, u8, u32)
 host_commands = st.one_of(
     st.just(fp.RequestInfo()),
     st.builds(fp.StreamControl, st.integers(0, 1)),
@@ -60,4 +60,4 @@ host_commands = st.one_of(
     st.builds(fp.HostHeartbeat, u32),
     st.builds(fp.SimTap, u8, u16),
 )
-any_message = st.one_of(device_info, gyro_block(), motor_state, device_status, log_text, command_ack, host_commands)
+any_message = st.one_of(device_info, gyro_block(), motor_state, device_status, log_text, command_outcome, host_commands)

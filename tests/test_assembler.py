@@ -39,7 +39,9 @@ def blocks(n, start_seq=0, t0=0, count=16, value=164):
 
 
 def test_counts_to_dps_and_erpm_to_rpm():
-    # MPU-6000 product spec: 16.4 LSB per deg/s; Microchip AN885: eRPM = RPM x pole pairs
+    # 16.4 counts per deg/s (a 16-bit output over +-2000 deg/s, 2^15 / 2000 rounded; common practice);
+    # eRPM = RPM x pole pairs: p pole pairs make p electrical cycles per turn (electric machines
+    # texts; recalled)
     def motors(t):
         return fp.MotorState(t, (fp.MotorEntry(70_000, 5000, 1), fp.MotorEntry(35_000, 2500, 0)))
 

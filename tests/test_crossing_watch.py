@@ -306,7 +306,8 @@ def test_dwell_is_time_not_frames():
 DEMO_EVENT_BOUND = 180  #: measured 157 to 159 over seeds 1..3 on the demo's script (DEVELOPERS.md)
 
 
-@pytest.mark.parametrize("scenario", ["quillback7", "quillback7_braced", "wren5", "wren5_cracked_arm", "pipit3"])
+@pytest.mark.parametrize("scenario", ["quillback7", "quillback7_braced", "brisling5", "brisling5_cracked_arm",
+                                      "pipit3"])
 def test_simulated_scripts_speak_once_per_passage_and_cross_only_in_the_band(scenario):
     from .conftest import judge_items, sim_items, true_profile
 

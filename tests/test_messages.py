@@ -29,16 +29,16 @@ def test_frame_roundtrip_through_stream_decoder(msg, seq):
         assert item.seq == seq and item.message == msg
 
 
-def test_counts_to_dps_mpu6000():
-    # InvenSense MPU-6000 product specification PS-MPU-6000A-00 rev 3.4: 16.4 LSB/(deg/s) at
-    # +-2000 deg/s, so 16.4 counts is 1 deg/s and 32767 counts is 1998.0 deg/s.
+def test_counts_to_dps_at_the_common_sensitivities():
+    # A 16-bit output over +-2000 deg/s gives 2^15 / 2000 = 16.384 counts per deg/s, often declared
+    # rounded as 16.4 (common practice): 16.4 counts is 1 deg/s and 32767 counts is 1998.0 deg/s.
     info = fp.DeviceInfo(sens_num=164, sens_den=10, full_scale_dps=2000)
     block = fp.GyroBlock(0, 0, np.array([[164, -16400, 32767]], dtype=np.int16))
     batch = fp.StreamDecoder().feed(fp.encode_frame(info, 0) + fp.encode_frame(block, 1))[1]
     dps = batch.dps(info.dps_per_count)
     np.testing.assert_allclose(dps[0], [10.0, -1000.0, 32767 / 16.4], rtol=1e-6)
     assert float(info.counts_per_dps) == pytest.approx(16.4)
-    # Bosch BMI270 datasheet: sensitivity 2^15 / full scale = 16.384 LSB/(deg/s) at +-2000.
+    # the exact form: sensitivity 2^15 / full scale = 16.384 counts per deg/s at +-2000 deg/s
     assert float(fp.DeviceInfo(sens_num=2**15, sens_den=2000).counts_per_dps) == pytest.approx(16.384)
 
 

@@ -15,8 +15,8 @@ BUILT_IN = list_scenarios()
 
 
 def test_the_required_airframes_and_faults_exist():
-    assert {"wren5", "quillback7", "quillback7_braced", "pipit3", "wren5_chipped_prop", "wren5_cracked_arm",
-            "wren5_loose_stack"} <= set(BUILT_IN)
+    assert {"brisling5", "quillback7", "quillback7_braced", "pipit3", "brisling5_chipped_prop", "brisling5_cracked_arm",
+            "brisling5_loose_stack"} <= set(BUILT_IN)
 
 
 @pytest.mark.parametrize("name", BUILT_IN)
@@ -36,17 +36,17 @@ def test_braced_build_is_stiffer_with_one_mode_barely_moved():
 
 
 def test_fault_variants_differ_from_the_good_build_as_stated():
-    good = load_scenario("wren5")
-    cracked = load_scenario("wren5_cracked_arm")
+    good = load_scenario("brisling5")
+    cracked = load_scenario("brisling5_cracked_arm")
     changed = [(a, b) for a, b in zip(good.modes, cracked.modes, strict=True) if a != b]
     assert len(changed) == 1
     a, b = changed[0]
     assert 0.85 <= b.freq_hz / a.freq_hz <= 0.90 and b.damping_ratio < a.damping_ratio
-    loose = load_scenario("wren5_loose_stack")
+    loose = load_scenario("brisling5_loose_stack")
     assert len(loose.modes) == len(good.modes) + 1
     extra = loose.modes[-1]
     assert extra.damping_ratio < min(m.damping_ratio for m in good.modes)
-    prop = load_scenario("wren5_chipped_prop")
+    prop = load_scenario("brisling5_chipped_prop")
     ratio = [p / g for p, g in zip(prop.motors.imbalance_gmm, good.motors.imbalance_gmm, strict=True)]
     assert sorted(ratio)[-1] == pytest.approx(3.0) and sorted(ratio)[-2] == pytest.approx(1.0)
 
@@ -78,7 +78,7 @@ def test_bad_fields_are_named(mutate, match):
 
 
 def test_unreadable_or_invalid_files(tmp_path):
-    with pytest.raises(ScenarioError, match="no scenario 'nope'; built in: pipit3"):
+    with pytest.raises(ScenarioError, match="no scenario 'nope'; built in: brisling5, .*pipit3"):
         load_scenario("nope")
     bad = tmp_path / "x.toml"
     bad.write_text("[airframe\nname=")
@@ -94,7 +94,7 @@ leaf = st.one_of(st.none(), st.booleans(), st.integers(-10**6, 10**6), st.floats
 
 @given(st.data())
 def test_mutated_scenarios_load_or_fail_cleanly(data):
-    d = copy.deepcopy(_raw("wren5"))
+    d = copy.deepcopy(_raw("brisling5"))
     for _ in range(data.draw(st.integers(1, 4))):
         table = data.draw(st.sampled_from(["airframe", "gyro", "motors", "device", "rigid", "modes", "script"]))
         target = d[table][data.draw(st.integers(0, len(d[table]) - 1))] if table == "modes" else d[table]

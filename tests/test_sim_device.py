@@ -1,4 +1,4 @@
-"""The device side of SPEC.md as the simulator implements it: commands, acks, safety, reboots."""
+"""The device side of SPEC.md as the simulator implements it: commands, outcomes, safety, reboots."""
 
 from __future__ import annotations
 
@@ -17,7 +17,7 @@ from simulators.stream import SimStream, StreamOptions
 
 from .sim_helpers import Host
 
-R = fp.AckResult
+R = fp.Outcome
 
 
 def make(name="quillback7", **opts) -> tuple[SimDevice, Host]:
@@ -43,7 +43,7 @@ def test_boot_sends_device_info_and_waits_for_stream_control():
     assert len(host.messages(fp.MotorState)) == n // 16  # motor state at 500 Hz beside 8 kHz gyro
 
 
-def test_acks_carry_the_right_result_codes():
+def test_outcomes_carry_the_right_result_codes():
     dev, host = make()
     s = host.send(
         fp.SetThrottle(5, (1000,) * 4),  # not armed
@@ -51,15 +51,15 @@ def test_acks_carry_the_right_result_codes():
         fp.SetThrottle(6, (1000,) * 4),  # wrong nonce
         fp.SetThrottle(5, (1000,) * 3),  # wrong motor count
         fp.SetThrottle(5, (9000, 1000, 1000, 1000)),  # above the 80 % limit
-        fp.HostHeartbeat(5),  # fine: no ack
+        fp.HostHeartbeat(5),  # fine: no outcome
         fp.HostHeartbeat(7),  # wrong nonce
         fp.RequestInfo(),
         fp.StopMotors(0),
     )
     dev.receive(fp.encode_raw(0x42, 200, b"\x05"))  # STREAM_CONTROL enable=5: malformed payload
-    dev.receive(fp.encode_raw(0x4F, 201, b""))  # a host type v1 does not define: skipped, no ack
+    dev.receive(fp.encode_raw(0x4F, 201, b""))  # a host type v1 does not define: skipped, no outcome
     host.run(0.05)
-    got = [(a.command_seq, a.result, a.detail) for a in host.acks()]
+    got = [(a.command_seq, a.result, a.detail) for a in host.outcomes()]
     assert (200, R.MALFORMED, 0) in got
     got = [g for g in got if g[0] != 200]
     assert got == [
@@ -140,7 +140,7 @@ def test_safety_under_generated_command_sequences(seq):
     # Throttle never above the limit; motors never run past timeout + one control period after
     # the last accepted keep-alive (SPEC 7).
     dev, host = make(chunk_periods=1)
-    limit = dev.scenario.device.throttle_limit
+    limit = dev.scenario.device.throttle_ceiling
     timeout = dev.scenario.device.heartbeat_timeout_ms / 1000
     period = dev.control_period_s
     alive_until = -1.0

@@ -101,7 +101,7 @@ def _steady_run(name, throttle, seconds=4.0, seed=3, **spec_overrides):
     return sc, np.concatenate(counts), np.concatenate(rpms, axis=1)
 
 
-@pytest.mark.parametrize("name", ["quillback7", "wren5", "pipit3"])
+@pytest.mark.parametrize("name", ["quillback7", "brisling5", "pipit3"])
 def test_motor_orders_in_welch(name):
     # Orders at k x RPM / 60 and the blade-pass at blades x RPM / 60 (general vibration practice),
     # found in scipy.signal.welch of the gyro output within one bin.
@@ -152,7 +152,7 @@ def test_tap_rings_at_the_scenario_modes():
 
 
 def test_deterministic_with_a_seed():
-    a = _steady_run("wren5", 0.3, seconds=0.5, seed=9)[1]
-    b = _steady_run("wren5", 0.3, seconds=0.5, seed=9)[1]
-    c = _steady_run("wren5", 0.3, seconds=0.5, seed=10)[1]
+    a = _steady_run("brisling5", 0.3, seconds=0.5, seed=9)[1]
+    b = _steady_run("brisling5", 0.3, seconds=0.5, seed=9)[1]
+    c = _steady_run("brisling5", 0.3, seconds=0.5, seed=10)[1]
     assert np.array_equal(a, b) and not np.array_equal(a, c)

@@ -17,7 +17,7 @@ from simulators.scenario import load_scenario
 from .conftest import judge_items, sim_items, true_profile
 
 PROFILES = __import__("pathlib").Path(__file__).resolve().parents[1] / "monitor" / "profiles"
-GOOD_BUILDS = ["quillback7", "quillback7_braced", "wren5", "pipit3", "wren5_chipped_prop"]
+GOOD_BUILDS = ["quillback7", "quillback7_braced", "brisling5", "pipit3", "brisling5_chipped_prop"]
 
 
 @pytest.mark.parametrize("scenario", GOOD_BUILDS)
@@ -33,14 +33,14 @@ def test_no_stray_peak_on_a_good_build_with_its_profile(scenario, seed):
 def test_a_loose_stack_is_one_stray_peak_at_its_frequency(seed):
     # the loose-stack build has one extra mode at 96.0 Hz (zeta 0.012) that the good build's
     # profile does not know: exactly one report, within 1.5 % of it
-    eng, events = judge_items(sim_items("wren5_loose_stack", seed), load_profile(PROFILES / "wren5.toml"))
+    eng, events = judge_items(sim_items("brisling5_loose_stack", seed), load_profile(PROFILES / "brisling5.toml"))
     strays = eng.stray_peaks()
     assert len(strays) == 1, [p.as_dict() for p in strays]
     assert abs(strays[0].freq_hz - 96.0) / 96.0 < 0.015
     assert len([e for e in events if getattr(e, "freq_hz", None) is not None]) == 1
 
 
-@pytest.mark.parametrize("scenario", ["quillback7", "wren5", "pipit3", "wren5_loose_stack"])
+@pytest.mark.parametrize("scenario", ["quillback7", "brisling5", "pipit3", "brisling5_loose_stack"])
 def test_without_a_profile_every_report_is_a_true_resonance_and_none_twice(scenario):
     # no profile: the stray search is all there is. No report may be an order line (or an order
     # folded back from above the Nyquist frequency): each lies near a true mode; no resonance is

@@ -129,7 +129,7 @@ size_t sr_encode_device_info(const sr_device_info_t *m, uint8_t seq, uint8_t *ou
     size_t i;
     if (m->board_id_len > SR_MAX_BOARD_ID || m->motor_count > SR_MAX_MOTORS || m->max_batch == 0 ||
         m->max_batch > SR_MAX_GYRO_BATCH || m->sens_num == 0 || m->sens_den == 0 ||
-        m->throttle_limit > SR_THROTTLE_FULL) {
+        m->throttle_ceiling > SR_THROTTLE_FULL) {
         return 0;
     }
     p[0] = SR_PROTOCOL_VERSION;
@@ -140,14 +140,14 @@ size_t sr_encode_device_info(const sr_device_info_t *m, uint8_t seq, uint8_t *ou
     put_u32(p + 14, m->sens_den);
     put_u16(p + 18, m->full_scale_dps);
     p[20] = m->filter_flags;
-    put_u16(p + 21, m->lowpass_hz);
-    put_u16(p + 23, m->notch_hz);
+    put_u16(p + 21, m->onboard_cutoff_hz);
+    put_u16(p + 23, m->onboard_notch_centre_hz);
     put_u16(p + 25, m->antialias_hz);
     p[27] = m->motor_count;
     p[28] = m->pole_pairs;
     put_u16(p + 29, m->heartbeat_timeout_ms);
     p[31] = m->max_batch;
-    put_u16(p + 32, m->throttle_limit);
+    put_u16(p + 32, m->throttle_ceiling);
     put_u16(p + 34, m->motor_state_rate_hz);
     p[36] = m->board_id_len;
     for (i = 0; i < m->board_id_len; i++) {
@@ -221,7 +221,7 @@ size_t sr_encode_log_text(uint8_t level, const char *text, size_t len, uint8_t s
     return sr_frame_encode(SR_LOG_TEXT, seq, p, 1u + len, out, cap);
 }
 
-size_t sr_encode_command_ack(uint8_t command_type, uint8_t command_seq, uint8_t result,
+size_t sr_encode_command_outcome(uint8_t command_type, uint8_t command_seq, uint8_t result,
                              uint32_t detail, uint8_t seq, uint8_t *out, size_t cap)
 {
     uint8_t p[7];
@@ -229,7 +229,7 @@ size_t sr_encode_command_ack(uint8_t command_type, uint8_t command_seq, uint8_t 
     p[1] = command_seq;
     p[2] = result;
     put_u32(p + 3, detail);
-    return sr_frame_encode(SR_COMMAND_ACK, seq, p, sizeof p, out, cap);
+    return sr_frame_encode(SR_COMMAND_OUTCOME, seq, p, sizeof p, out, cap);
 }
 
 /* ---------------------------------------------------------------- host command decoder */
@@ -362,11 +362,11 @@ static void zero_throttle(sr_bench_t *b)
     }
 }
 
-void sr_bench_init(sr_bench_t *b, uint16_t heartbeat_timeout_ms, uint16_t throttle_limit,
+void sr_bench_init(sr_bench_t *b, uint16_t heartbeat_timeout_ms, uint16_t throttle_ceiling,
                    uint8_t motor_count)
 {
     b->heartbeat_timeout_ms = heartbeat_timeout_ms;
-    b->throttle_limit = throttle_limit > SR_THROTTLE_FULL ? SR_THROTTLE_FULL : throttle_limit;
+    b->throttle_ceiling = throttle_ceiling > SR_THROTTLE_FULL ? SR_THROTTLE_FULL : throttle_ceiling;
     b->motor_count = motor_count > SR_MAX_MOTORS ? SR_MAX_MOTORS : motor_count;
     b->armed = 0;
     b->nonce = 0;
@@ -403,17 +403,17 @@ sr_verdict_t sr_bench_command(sr_bench_t *b, const sr_command_t *cmd, uint32_t n
 {
     sr_verdict_t v;
     size_t i;
-    v.result = SR_ACK_OK;
+    v.result = SR_OUTCOME_OK;
     v.detail = 0;
     switch (cmd->type) {
     case SR_ARM_BENCH:
-        if (b->throttle_limit == 0 || b->motor_count == 0) {
+        if (b->throttle_ceiling == 0 || b->motor_count == 0) {
             /* motors reported (or none) but not driven by this device: nothing can be armed */
-            v.result = SR_ACK_UNSUPPORTED;
+            v.result = SR_OUTCOME_UNSUPPORTED;
             return v;
         }
         if (b->faults & SR_FAULTS_BLOCKING_ARM) {
-            v.result = SR_ACK_REFUSED_FAULT;
+            v.result = SR_OUTCOME_REFUSED_FAULT;
             v.detail = b->faults;
             return v;
         }
@@ -428,29 +428,29 @@ sr_verdict_t sr_bench_command(sr_bench_t *b, const sr_command_t *cmd, uint32_t n
         return v;
     case SR_SET_THROTTLE:
         if (!b->armed) {
-            v.result = SR_ACK_NOT_ARMED;
+            v.result = SR_OUTCOME_NOT_ARMED;
             return v;
         }
         if (cmd->u.throttle.nonce != b->nonce) {
-            v.result = SR_ACK_BAD_NONCE;
+            v.result = SR_OUTCOME_BAD_NONCE;
             return v;
         }
         if (cmd->u.throttle.count != b->motor_count) {
-            v.result = SR_ACK_BAD_MOTOR_COUNT;
+            v.result = SR_OUTCOME_BAD_MOTOR_COUNT;
             v.detail = b->motor_count;
             return v;
         }
         for (i = 0; i < cmd->u.throttle.count; i++) {
             uint16_t t = cmd->u.throttle.throttle[i];
-            if (t > b->throttle_limit) {
-                t = b->throttle_limit;
-                v.result = SR_ACK_LIMITED;
-                v.detail = b->throttle_limit;
+            if (t > b->throttle_ceiling) {
+                t = b->throttle_ceiling;
+                v.result = SR_OUTCOME_LIMITED;
+                v.detail = b->throttle_ceiling;
             }
             b->throttle[i] = t;
         }
-        if (v.result == SR_ACK_LIMITED) {
-            b->faults = (uint16_t)(b->faults | SR_FAULT_THROTTLE_LIMITED);
+        if (v.result == SR_OUTCOME_LIMITED) {
+            b->faults = (uint16_t)(b->faults | SR_FAULT_THROTTLE_CAPPED);
         }
         b->last_heartbeat_ms = now_ms;
         return v;
@@ -460,7 +460,7 @@ sr_verdict_t sr_bench_command(sr_bench_t *b, const sr_command_t *cmd, uint32_t n
     case SR_HOST_HEARTBEAT:
         if (b->armed) {
             if (cmd->u.nonce != b->nonce) {
-                v.result = SR_ACK_BAD_NONCE;
+                v.result = SR_OUTCOME_BAD_NONCE;
                 return v;
             }
             b->last_heartbeat_ms = now_ms;
@@ -470,7 +470,7 @@ sr_verdict_t sr_bench_command(sr_bench_t *b, const sr_command_t *cmd, uint32_t n
     case SR_STREAM_CONTROL:
         return v;
     default:
-        v.result = SR_ACK_UNSUPPORTED;
+        v.result = SR_OUTCOME_UNSUPPORTED;
         return v;
     }
 }

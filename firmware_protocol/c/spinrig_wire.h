@@ -34,7 +34,7 @@ enum {
     SR_MOTOR_STATE = 0x03,
     SR_DEVICE_STATUS = 0x04,
     SR_LOG_TEXT = 0x05,
-    SR_COMMAND_ACK = 0x06,
+    SR_COMMAND_OUTCOME = 0x06,
     SR_REQUEST_INFO = 0x41,
     SR_STREAM_CONTROL = 0x42,
     SR_ARM_BENCH = 0x43,
@@ -44,16 +44,16 @@ enum {
     SR_SIM_TAP = 0xF0
 };
 
-/* COMMAND_ACK result codes. */
+/* COMMAND_OUTCOME result codes. */
 enum {
-    SR_ACK_OK = 0,
-    SR_ACK_NOT_ARMED = 1,
-    SR_ACK_BAD_NONCE = 2,
-    SR_ACK_LIMITED = 3,
-    SR_ACK_MALFORMED = 4,
-    SR_ACK_UNSUPPORTED = 5,
-    SR_ACK_REFUSED_FAULT = 6,
-    SR_ACK_BAD_MOTOR_COUNT = 7
+    SR_OUTCOME_OK = 0,
+    SR_OUTCOME_NOT_ARMED = 1,
+    SR_OUTCOME_BAD_NONCE = 2,
+    SR_OUTCOME_LIMITED = 3,
+    SR_OUTCOME_MALFORMED = 4,
+    SR_OUTCOME_UNSUPPORTED = 5,
+    SR_OUTCOME_REFUSED_FAULT = 6,
+    SR_OUTCOME_BAD_MOTOR_COUNT = 7
 };
 
 /* DEVICE_STATUS bench states and fault bits. */
@@ -61,7 +61,7 @@ enum { SR_BENCH_DISARMED = 0, SR_BENCH_ARMED = 1, SR_BENCH_SPINNING = 2 };
 #define SR_FAULT_HEARTBEAT_LOST 0x0001u
 #define SR_FAULT_STOP_COMMAND 0x0002u
 #define SR_FAULT_PROTOCOL_ERRORS 0x0004u
-#define SR_FAULT_THROTTLE_LIMITED 0x0008u
+#define SR_FAULT_THROTTLE_CAPPED 0x0008u
 #define SR_FAULT_SENSOR 0x0010u
 #define SR_FAULT_SUPPLY_LOW 0x0020u
 #define SR_FAULT_OVERCURRENT 0x0040u
@@ -99,14 +99,14 @@ typedef struct {
     uint32_t sens_den;
     uint16_t full_scale_dps;    /* deg/s */
     uint8_t filter_flags;       /* bit0 low-pass, bit1 static notch, bit2 RPM notch; 0 = raw */
-    uint16_t lowpass_hz;        /* Hz, 0 = none */
-    uint16_t notch_hz;          /* Hz, 0 = none */
+    uint16_t onboard_cutoff_hz;        /* Hz, 0 = none */
+    uint16_t onboard_notch_centre_hz;          /* Hz, 0 = none */
     uint16_t antialias_hz;      /* sensor's own anti-alias bandwidth, Hz, 0 = unknown */
     uint8_t motor_count;        /* 0..8 */
     uint8_t pole_pairs;         /* 1..255 */
     uint16_t heartbeat_timeout_ms;
     uint8_t max_batch;          /* 1..40 samples per GYRO_BLOCK */
-    uint16_t throttle_limit;    /* 0.01 % */
+    uint16_t throttle_ceiling;    /* 0.01 % */
     uint16_t motor_state_rate_hz;
     uint8_t board_id_len;       /* 0..32 */
     char board_id[SR_MAX_BOARD_ID]; /* printable ASCII, not NUL-terminated */
@@ -144,14 +144,14 @@ size_t sr_encode_motor_state(const sr_motor_state_t *m, uint8_t seq, uint8_t *ou
 size_t sr_encode_device_status(const sr_device_status_t *m, uint8_t seq, uint8_t *out, size_t cap);
 size_t sr_encode_log_text(uint8_t level, const char *text, size_t len, uint8_t seq, uint8_t *out,
                           size_t cap);
-size_t sr_encode_command_ack(uint8_t command_type, uint8_t command_seq, uint8_t result,
+size_t sr_encode_command_outcome(uint8_t command_type, uint8_t command_seq, uint8_t result,
                              uint32_t detail, uint8_t seq, uint8_t *out, size_t cap);
 
 /* ---------------------------------------------------------------- host commands */
 
 typedef struct {
     uint8_t type; /* SR_REQUEST_INFO .. SR_HOST_HEARTBEAT, SR_SIM_TAP */
-    uint8_t seq;  /* frame seq, echoed in COMMAND_ACK */
+    uint8_t seq;  /* frame seq, echoed in COMMAND_OUTCOME */
     union {
         uint8_t enable;                    /* STREAM_CONTROL */
         uint32_t nonce;                    /* ARM_BENCH, HOST_HEARTBEAT */
@@ -195,7 +195,7 @@ sr_rx_t sr_decode_frame(const uint8_t *enc, size_t len, sr_command_t *out);
 
 typedef struct {
     uint16_t heartbeat_timeout_ms;
-    uint16_t throttle_limit;       /* 0.01 % */
+    uint16_t throttle_ceiling;       /* 0.01 % */
     uint8_t motor_count;
     uint8_t armed;
     uint32_t nonce;
@@ -208,14 +208,14 @@ typedef struct {
 } sr_bench_t;
 
 typedef struct {
-    uint8_t result; /* SR_ACK_* */
+    uint8_t result; /* SR_OUTCOME_* */
     uint32_t detail;
 } sr_verdict_t;
 
 /* Starts disarmed with all throttles at zero and the REBOOTED fault latched. */
-void sr_bench_init(sr_bench_t *b, uint16_t heartbeat_timeout_ms, uint16_t throttle_limit,
+void sr_bench_init(sr_bench_t *b, uint16_t heartbeat_timeout_ms, uint16_t throttle_ceiling,
                    uint8_t motor_count);
-/* Apply one valid host command at time now_ms; returns the COMMAND_ACK verdict.
+/* Apply one valid host command at time now_ms; returns the COMMAND_OUTCOME verdict.
  * REQUEST_INFO and STREAM_CONTROL are accepted (OK) and left to the caller. */
 sr_verdict_t sr_bench_command(sr_bench_t *b, const sr_command_t *cmd, uint32_t now_ms);
 /* Report a bad host frame (CRC, malformed or oversize) at now_ms. Returns 1 when this

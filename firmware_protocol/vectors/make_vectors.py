@@ -14,7 +14,7 @@ import numpy as np
 
 from firmware_protocol import (
     ArmBench,
-    CommandAck,
+    CommandOutcome,
     DeviceInfo,
     DeviceStatus,
     GyroBlock,
@@ -45,11 +45,11 @@ def good_vectors() -> list[tuple[str, int, object]]:
         ("device_info_quillback", 0, DeviceInfo(
             boot_id=0x1A2B3C4D, gyro_rate_mhz=8_000_000, sens_num=164, sens_den=10, full_scale_dps=2000,
             antialias_hz=2000, motor_count=4, pole_pairs=7, heartbeat_timeout_ms=500, max_batch=16,
-            throttle_limit=8000, motor_state_rate_hz=500, board_id="QB7-BENCH")),
+            throttle_ceiling=8000, motor_state_rate_hz=500, board_id="QB7-BENCH")),
         ("device_info_filtered_flu", 1, DeviceInfo(
             axis_convention=2, boot_id=7, gyro_rate_mhz=6_400_000, sens_num=32768, sens_den=2000,
-            full_scale_dps=2000, filter_flags=0b011, lowpass_hz=250, notch_hz=180, motor_count=8,
-            pole_pairs=6, heartbeat_timeout_ms=300, max_batch=40, throttle_limit=10000,
+            full_scale_dps=2000, filter_flags=0b011, onboard_cutoff_hz=250, onboard_notch_centre_hz=180, motor_count=8,
+            pole_pairs=6, heartbeat_timeout_ms=300, max_batch=40, throttle_ceiling=10000,
             motor_state_rate_hz=250, board_id="")),
         ("gyro_block_one", 2, GyroBlock(0, 0, np.array([[1, -1, 0]], dtype=np.int16))),
         ("gyro_block_16", 3, GyroBlock(123456, 987654321, (np.arange(48, dtype=np.int16).reshape(16, 3) - 24) * 1000)),
@@ -63,8 +63,8 @@ def good_vectors() -> list[tuple[str, int, object]]:
         ("device_status_faults", 9, DeviceStatus(0xFFFFFFFF, 7, 0, 0b11_1111_1111, 0, 0, 65535, 65535, 0)),
         ("log_text_info", 10, LogText(1, "gyro calibrated")),
         ("log_text_empty", 11, LogText(3, "")),
-        ("command_ack_ok", 12, CommandAck(0x43, 17, 0, 0xCAFEF00D)),
-        ("command_ack_limited", 13, CommandAck(0x44, 18, 3, 8000)),
+        ("command_outcome_ok", 12, CommandOutcome(0x43, 17, 0, 0xCAFEF00D)),
+        ("command_outcome_limited", 13, CommandOutcome(0x44, 18, 3, 8000)),
         ("request_info", 0, RequestInfo()),
         ("stream_start", 1, StreamControl(1)),
         ("stream_stop", 2, StreamControl(0)),

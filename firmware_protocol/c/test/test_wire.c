@@ -106,28 +106,28 @@ static void test_bench_safety(void)
         thr.u.throttle.throttle[i] = 2000;
     }
     v = sr_bench_command(&b, &thr, 0);
-    CHECK(v.result == SR_ACK_NOT_ARMED && b.throttle[0] == 0, "throttle refused before arming");
+    CHECK(v.result == SR_OUTCOME_NOT_ARMED && b.throttle[0] == 0, "throttle refused before arming");
 
     arm.u.nonce = 77;
     v = sr_bench_command(&b, &arm, 10);
-    CHECK(v.result == SR_ACK_OK && v.detail == 77 && b.faults == 0, "arm");
+    CHECK(v.result == SR_OUTCOME_OK && v.detail == 77 && b.faults == 0, "arm");
     thr.u.throttle.nonce = 78;
     v = sr_bench_command(&b, &thr, 20);
-    CHECK(v.result == SR_ACK_BAD_NONCE && b.throttle[0] == 0, "wrong nonce refused");
+    CHECK(v.result == SR_OUTCOME_BAD_NONCE && b.throttle[0] == 0, "wrong nonce refused");
     thr.u.throttle.nonce = 77;
     thr.u.throttle.count = 3;
     v = sr_bench_command(&b, &thr, 20);
-    CHECK(v.result == SR_ACK_BAD_MOTOR_COUNT, "motor count must match");
+    CHECK(v.result == SR_OUTCOME_BAD_MOTOR_COUNT, "motor count must match");
     thr.u.throttle.count = 4;
     thr.u.throttle.throttle[2] = 9500;
     v = sr_bench_command(&b, &thr, 30);
-    CHECK(v.result == SR_ACK_LIMITED && v.detail == 8000 && b.throttle[2] == 8000 && b.throttle[0] == 2000,
+    CHECK(v.result == SR_OUTCOME_LIMITED && v.detail == 8000 && b.throttle[2] == 8000 && b.throttle[0] == 2000,
           "throttle clamped to the limit");
     CHECK(sr_bench_state(&b) == SR_BENCH_SPINNING, "spinning");
 
     /* Heartbeat keeps it alive; silence for the timeout stops it. */
     hb.u.nonce = 77;
-    CHECK(sr_bench_command(&b, &hb, 400).result == SR_ACK_OK, "heartbeat ok");
+    CHECK(sr_bench_command(&b, &hb, 400).result == SR_OUTCOME_OK, "heartbeat ok");
     CHECK(sr_bench_tick(&b, 899) == 0 && b.armed, "alive before timeout");
     CHECK(sr_bench_tick(&b, 900) == 1, "stops at timeout");
     CHECK(!b.armed && b.throttle[2] == 0 && (b.faults & SR_FAULT_HEARTBEAT_LOST), "disarmed, zero");
@@ -163,13 +163,13 @@ static void test_bench_safety(void)
     /* A blocking fault refuses arming. */
     sr_bench_stop(&b, SR_FAULT_SUPPLY_LOW);
     v = sr_bench_command(&b, &arm, 20000);
-    CHECK(v.result == SR_ACK_REFUSED_FAULT && !b.armed, "fault blocks arming");
+    CHECK(v.result == SR_OUTCOME_REFUSED_FAULT && !b.armed, "fault blocks arming");
 
-    /* Motors reported but not driven (throttle_limit 0): arming is UNSUPPORTED (SPEC 7.6). */
+    /* Motors reported but not driven (throttle_ceiling 0): arming is UNSUPPORTED (SPEC 7.6). */
     sr_bench_init(&b, 500, 0, 4);
     arm.u.nonce = 5;
     v = sr_bench_command(&b, &arm, 0);
-    CHECK(v.result == SR_ACK_UNSUPPORTED && !b.armed, "no driven motors: arming unsupported");
+    CHECK(v.result == SR_OUTCOME_UNSUPPORTED && !b.armed, "no driven motors: arming unsupported");
 }
 
 static void test_decoder_resync(void)
@@ -279,14 +279,14 @@ static void check_device_vector(const vector_t *v)
         m.sens_den = (uint32_t)val(v, "sens_den");
         m.full_scale_dps = (uint16_t)val(v, "full_scale_dps");
         m.filter_flags = (uint8_t)val(v, "filter_flags");
-        m.lowpass_hz = (uint16_t)val(v, "lowpass_hz");
-        m.notch_hz = (uint16_t)val(v, "notch_hz");
+        m.onboard_cutoff_hz = (uint16_t)val(v, "onboard_cutoff_hz");
+        m.onboard_notch_centre_hz = (uint16_t)val(v, "onboard_notch_centre_hz");
         m.antialias_hz = (uint16_t)val(v, "antialias_hz");
         m.motor_count = (uint8_t)val(v, "motor_count");
         m.pole_pairs = (uint8_t)val(v, "pole_pairs");
         m.heartbeat_timeout_ms = (uint16_t)val(v, "heartbeat_timeout_ms");
         m.max_batch = (uint8_t)val(v, "max_batch");
-        m.throttle_limit = (uint16_t)val(v, "throttle_limit");
+        m.throttle_ceiling = (uint16_t)val(v, "throttle_ceiling");
         m.motor_state_rate_hz = (uint16_t)val(v, "motor_state_rate_hz");
         m.board_id_len = (uint8_t)strlen(b->text);
         memcpy(m.board_id, b->text, m.board_id_len);
@@ -327,8 +327,8 @@ static void check_device_vector(const vector_t *v)
     } else if (strcmp(v->type, "LOG_TEXT") == 0) {
         const field_t *t = fld(v, "text");
         n = sr_encode_log_text((uint8_t)val(v, "level"), t->text, strlen(t->text), seq, out, sizeof out);
-    } else if (strcmp(v->type, "COMMAND_ACK") == 0) {
-        n = sr_encode_command_ack((uint8_t)val(v, "command_type"), (uint8_t)val(v, "command_seq"),
+    } else if (strcmp(v->type, "COMMAND_OUTCOME") == 0) {
+        n = sr_encode_command_outcome((uint8_t)val(v, "command_type"), (uint8_t)val(v, "command_seq"),
                                   (uint8_t)val(v, "result"), (uint32_t)val(v, "detail"), seq, out,
                                   sizeof out);
     } else {
