@@ -36,7 +36,7 @@ def run(args) -> int:
     print(f"spinrig demo: a simulated {scenario.airframe} ({scenario.description}) on {path}; its throttle "
           f"script runs {seconds:.0f} s: idle, a hold, a slow sweep to 75 % and back, two holds.")
     watch_args = SimpleNamespace(port=path, baud=921_600, profile=str(PROFILE), capture=None, events=None,
-                                 duration=seconds, json=False, window_s=0.256, overlap=0.875,
+                                 duration=seconds, json=False, window_s=0.256, overlap=0.75,
                                  mounting=scenario.mounting, props="on", supply_v=None, note="demo")
     try:
         if sys.stdout.isatty() and not getattr(args, "headless", False):

@@ -65,6 +65,24 @@ def summary(engine: Engine, health: dict, printer: EventPrinter, assembler_stats
     }
 
 
+def bands_table(bands: list[dict]) -> list[str]:
+    """The observed and predicted bands as aligned text lines, headed and footnoted."""
+    if not bands:
+        return ["observed bands: none"]
+    out = ["observed bands (RPM where an order was crossing a mode) and the predicted bands:"]
+    rows = [(f"{b['mode']} {b['mode_hz']:.1f} Hz", b["order_name"],
+             f"{b['observed_rpm'][0]:.0f}-{b['observed_rpm'][1]:.0f}",
+             f"{b['predicted_rpm'][0]:.0f}-{b['predicted_rpm'][1]:.0f}", f"{b['peak_db']:.1f}",
+             "M" + ",".join(str(m) for m in b["motors"])) for b in bands]
+    head = ("mode", "order", "observed RPM", "predicted RPM", "peak dB*", "motors")
+    widths = [max(len(r[c]) for r in [head, *rows]) for c in range(len(head))]
+    for r in [head, *rows]:
+        out.append("  " + "  ".join(v.ljust(w) if c < 2 or c == 5 else v.rjust(w)
+                                    for c, (v, w) in enumerate(zip(r, widths, strict=True))).rstrip())
+    out.append("  * highest response at the mode while crossing, dB re 1 (deg/s)^2/Hz")
+    return out
+
+
 def print_summary(s: dict, out, as_json: bool) -> None:
     if as_json:
         out.write(json.dumps(s, sort_keys=True, default=str) + "\n")
@@ -96,20 +114,8 @@ def print_summary(s: dict, out, as_json: bool) -> None:
     ev = s["events"]
     out.write(f"crossings: {ev.get('crossing', 0)} crossing, {ev.get('nearing', 0)} nearing events, "
               f"{s['frames']} spectra\n")
-    if s["bands"]:
-        out.write("observed bands (RPM where an order was crossing a mode) and the predicted bands:\n")
-        rows = [(f"{b['mode']} {b['mode_hz']:.1f} Hz", b["order_name"],
-                 f"{b['observed_rpm'][0]:.0f}-{b['observed_rpm'][1]:.0f}",
-                 f"{b['predicted_rpm'][0]:.0f}-{b['predicted_rpm'][1]:.0f}", f"{b['peak_db']:.1f}",
-                 "M" + ",".join(str(m) for m in b["motors"])) for b in s["bands"]]
-        head = ("mode", "order", "observed RPM", "predicted RPM", "peak dB*", "motors")
-        widths = [max(len(r[c]) for r in [head, *rows]) for c in range(len(head))]
-        for r in [head, *rows]:
-            out.write("  " + "  ".join(v.ljust(w) if c < 2 else v.rjust(w)
-                                       for c, (v, w) in enumerate(zip(r, widths, strict=True))).rstrip() + "\n")
-        out.write("  * highest response at the mode while crossing, dB re 1 (deg/s)^2/Hz\n")
-    else:
-        out.write("observed bands: none\n")
+    for line in bands_table(s["bands"]):
+        out.write(line + "\n")
     if s["stray_peaks"]:
         out.write("stray peaks (not in the profile):\n")
         for p in s["stray_peaks"]:

@@ -7,6 +7,7 @@ r/t/y toggle roll/pitch/yaw, k tap (simulated devices), ? help, q quit.
 
 from __future__ import annotations
 
+import textwrap
 import time
 
 import numpy as np
@@ -44,41 +45,85 @@ WATERFALL_PERIOD_S = 0.25
 #: person, and every rewrite re-lays the side column out
 PANEL_PERIOD_S = 0.2
 ORDER_SHORT = ("1x", "2x", "bp", "2bp")
-STATE_MARK = {"clear": "  ok ", "nearing": ">> near", "crossing": "!! CROSS"}
+STATE_MARK = {"clear": "  ok    ", "nearing": ">> near ", "crossing": "!! CROSS"}
+STATE_MARK_SHORT = {"clear": "ok", "nearing": ">>", "crossing": "!!"}  #: narrow columns: symbol only
 
-HELP = """spinrig live screen keys
+HELP = """spinrig keys
 
-  space    freeze / resume the display (data keeps flowing)
-  p        peak hold on / off
-  [ ]      shorter / longer spectrum window
-  o        next overlap (50, 75, 87.5 %)
-  < >      move the frequency cursor (shift: ten columns)
-  m        mark the cursor peak as a mode and save it to the profile
-  c        start / stop a capture (live ports)
-  r t y    show / hide roll, pitch, yaw
-  k        tap the frame (simulated devices only)
-  ?        this help          q  quit (motors are stopped)
+space        freeze / resume (data keeps flowing)
+p            peak hold on / off
+[  ]         shorter / longer spectrum window
+o            next overlap: 50, 75, 87.5 %
+left right   move the cursor (shift: 10 columns)
+m            mark the cursor peak as a frame mode
+             (saved to the profile file)
+c            start / stop a capture
+r  t  y      show / hide roll, pitch, yaw
+k            tap the frame (simulated devices)
+?            this help
+q            quit
 
-press any key to close"""
+any key closes this box"""
+
+#: right-hand column width by terminal width: a share of it, within these bounds (columns)
+SIDE_SHARE, SIDE_MIN, SIDE_MAX = 0.36, 30, 78
+
+
+def layout_for(width: int, height: int) -> dict:
+    """Sizes (in cells) for a terminal of ``width`` x ``height``: the side column, the waterfall
+    rows and the rows kept for the frame-mode panel, so that every panel keeps what matters."""
+    side = int(min(SIDE_MAX, max(SIDE_MIN, round(width * SIDE_SHARE))))
+    if height < 30:
+        wf = 4
+    elif height < 44:
+        wf = max(6, height // 5)
+    else:
+        wf = height // 4
+    return {"side": side, "waterfall": wf, "modes_max": max(6, height // 2), "compact": height < 32}
+
+
+def wrap(text: str, width: int, indent: int = 3) -> list[str]:
+    """``text`` in lines of at most ``width`` cells, broken between words (never inside one)."""
+    if width <= indent + 4 or len(text) <= width:
+        return [text]
+    return textwrap.wrap(text, width, subsequent_indent=" " * indent, break_long_words=False,
+                         break_on_hyphens=False) or [text]
 
 
 def _short_order(name: str) -> str:
     return "2bp" if name.startswith("2x blade") else "bp" if name.startswith("blade") else name
 
 
-def _event_line(e: CrossingEvent) -> str:
-    """One (mode, order) group's change as one line in the side column's width: what, which mode,
-    which motors and order, where, and how strong (dB over the mode's floor)."""
+def _event_line(e: CrossingEvent, width: int = 200) -> list[str]:
+    """One (mode, order) group's change in the side column's width: when (stream s), what, which
+    mode, which motors and order, where, and how strong (dB over the mode's floor). The longest
+    form that fits; the shortest keeps time, state, mode frequency, order, RPM and level; if even
+    that is too wide it is wrapped between words."""
     word = {"crossing": "CROSS", "nearing": "NEAR", "clear": "clear"}[e.state]
     who = e.motor_list(("crossing",) if e.state == "crossing" else ("crossing", "nearing"))
-    return (f"{e.t_s:6.1f} {word:5s} {e.mode} {who} {_short_order(e.order_name)} {e.order_hz:.0f} Hz "
-            f"({e.mode_hz:.0f}) {e.rpm:.0f} rpm {e.over_floor_db:+.0f} dB")
+    k = _short_order(e.order_name)
+    forms = [
+        f"{e.t_s:6.1f} s {word:5s} {e.mode} ({e.mode_hz:.0f} Hz) {who} {k} at {e.order_hz:.0f} Hz, "
+        f"{e.rpm:.0f} rpm, {e.over_floor_db:+.0f} dB over floor",
+        f"{e.t_s:6.1f} {word:5s} {e.mode} {who} {k} {e.order_hz:.0f} Hz {e.rpm:.0f} rpm "
+        f"{e.over_floor_db:+.0f} dB/floor",
+        f"{e.t_s:6.1f} s {word:5s} {e.mode_hz:.0f} Hz {who} {k} at {e.rpm:.0f} rpm, "
+        f"{e.over_floor_db:+.0f} dB over floor",
+        f"{e.t_s:6.1f} {word:5s} {e.mode_hz:.0f} Hz {who} {k} {e.rpm:.0f} rpm {e.over_floor_db:+.0f} dB/floor",
+        f"{e.t_s:.1f} {word} {e.mode_hz:.0f}Hz {who} {k} {e.rpm:.0f}rpm {e.over_floor_db:+.0f}dB",
+    ]
+    for f in forms:
+        if len(f) <= width:
+            return [f]
+    return wrap(forms[-1], width)
 
 
 class HelpScreen(ModalScreen):
     DEFAULT_CSS = """
     HelpScreen { align: center middle; }
-    #help { width: 64; height: auto; border: round #5fb3ff; padding: 1 2; background: #0d1117; }
+    HelpScreen { background: #17150f 0%; }
+    #help { width: auto; max-width: 100%; height: auto; max-height: 100%; border: round #d9a54a;
+            padding: 0 1; background: #25211a; color: #e2dacb; }
     """
 
     def compose(self) -> ComposeResult:
@@ -89,20 +134,42 @@ class HelpScreen(ModalScreen):
         self.app.pop_screen()
 
 
+class SummaryScreen(ModalScreen):
+    """The end of a timed run (the demo): the bands to avoid and the stray peaks, until a key."""
+
+    DEFAULT_CSS = """
+    SummaryScreen { align: center middle; background: #17150f 0%; }
+    #summary { width: auto; max-width: 100%; height: auto; max-height: 100%; border: round #d9a54a;
+               padding: 0 1; background: #25211a; color: #e2dacb; }
+    """
+
+    def __init__(self, text: str):
+        super().__init__()
+        self.text = text
+
+    def compose(self) -> ComposeResult:
+        yield Static(self.text, id="summary", markup=False)
+
+    def on_key(self, event) -> None:
+        event.stop()
+        self.app.exit(0)
+
+
 class SpinrigApp(App):
+    TITLE = "spinrig"
     CSS = """
-    Screen { background: #0d1117; }
+    Screen { background: #17150f; }
     #caution { height: 1; background: #5a3a00; }
     #main { height: 1fr; }
     #left { width: 2fr; }
-    #right { width: 1fr; min-width: 28; }
+    #right { width: 30; }
     #spec_title, #wf_title { height: 1; }
     #spectrum { height: 1fr; min-height: 8; }
-    #waterfall { height: 1fr; min-height: 5; }
-    #motors { height: auto; max-height: 10; border-top: solid #30363d; }
-    #modes { height: auto; max-height: 16; border-top: solid #30363d; }
-    #events { height: 1fr; border-top: solid #30363d; }
-    #status { height: 1; background: #161b22; }
+    #waterfall { height: 4; }
+    #motors { height: auto; max-height: 10; border-top: solid #433b2f; }
+    #modes { height: auto; max-height: 16; border-top: solid #433b2f; }
+    #events { height: 1fr; border-top: solid #433b2f; border-title-color: #aa9e8a; border-title-align: left; }
+    #status { height: 1; background: #25211a; }
     """
     BINDINGS = [
         Binding("q", "quit_run", "quit"),
@@ -150,9 +217,11 @@ class SpinrigApp(App):
                 yield TextPanel(["waterfall (newest at the top)"], TITLE_STYLE, auto_height=False, id="wf_title")
                 yield WaterfallView(id="waterfall")
             with Vertical(id="right"):
-                yield TextPanel(["motors"], id="motors")
-                yield TextPanel(["modes"], id="modes")
-                yield EventLog(id="events")
+                yield TextPanel(["motor speeds"], id="motors")
+                yield TextPanel(["frame modes"], id="modes")
+                log = EventLog(id="events")
+                log.border_title = "events: stream s, dB over the mode's floor"
+                yield log
         yield TextPanel([""], STATUS_STYLE, auto_height=False, id="status")
 
     def on_mount(self) -> None:
@@ -163,7 +232,7 @@ class SpinrigApp(App):
                 self.note(f"cannot start: {exc}")
         self.set_interval(1.0 / self.fps, self.tick)
         if self.duration:
-            self.set_timer(self.duration, self.action_quit_run)
+            self.set_timer(self.duration, self.action_end_run)
 
     # ---------------------------------------------------------------- drawing
 
@@ -172,10 +241,26 @@ class SpinrigApp(App):
 
     def on_resize(self, event) -> None:
         self.query_one("#caution", TextPanel).set_lines([self._caution_text()])
+        lay = layout_for(self.size.width, self.size.height)
+        self.query_one("#right").styles.width = lay["side"]
+        self.query_one("#waterfall").styles.height = lay["waterfall"]
+        self.query_one("#modes").styles.max_height = lay["modes_max"]
+        long_title = "events: stream s, dB over the mode's floor"
+        fits = lay["side"] >= len(long_title) + 4
+        self.query_one("#events").border_title = long_title if fits else "events (s, dB/floor)"
+        self._panels(self.live.snapshot())
+
+    def _side_width(self) -> int:
+        w = self.query_one("#events").size.width
+        return w if w > 0 else layout_for(self.size.width, self.size.height)["side"]
 
     def note(self, text: str) -> None:
+        """A message in the event log, stamped with stream time like the events (s)."""
         self.messages.append(text)
-        self.query_one("#events", EventLog).write(f"{self.clock()} {text}")
+        t = self.live.snapshot().t_s
+        log = self.query_one("#events", EventLog)
+        for line in wrap(f"{t:6.1f} {text}", self._side_width(), indent=7):
+            log.write(line)
 
     def tick(self, force: bool = False) -> None:
         """Draw the newest snapshot (the screen's timer calls this at ``fps``). The waterfall and the
@@ -204,11 +289,15 @@ class SpinrigApp(App):
         evs = list(self.live.events)
         new = evs[self._events_seen - len(evs):] if self._events_seen > len(evs) else evs[self._events_seen:]
         self._events_seen = len(evs) if len(evs) < self.live.events.maxlen else self._events_seen
+        width = self._side_width()
         for e in new[-50:]:
             if isinstance(e, CrossingEvent):
-                log.write(_event_line(e), STATE_STYLES.get(e.state, BASE))
+                lines, style = _event_line(e, width), STATE_STYLES.get(e.state, BASE)
             else:
-                log.write(e.text(), STRAY_STYLE if getattr(e, "freq_hz", None) is not None else BASE)
+                lines = wrap(e.text(), width, indent=7)
+                style = STRAY_STYLE if getattr(e, "freq_hz", None) is not None else BASE
+            for line in lines:
+                log.write(line, style)
         if len(evs) >= self.live.events.maxlen:
             self.live.events.clear()
             self._events_seen = 0
@@ -221,59 +310,94 @@ class SpinrigApp(App):
     def _panels(self, snap) -> None:
         spec = self.query_one(SpectrumView)
         cfg = self.live.engine.config
+        width = self._side_width()
         est = " (estimated)" if snap.rpm_estimated else ""
-        self._set(
-            "#spec_title",
-            f"spectrum {'peak hold' if spec.use_peak else 'live'} | window {cfg.window_s * 1000:.0f} ms, "
-            f"overlap {cfg.overlap * 100:.1f} % | {spec.readout}"
-        )
-        lines = [f"motors{est}"]
+        shown = "frozen" if self.live.frozen_snapshot is not None else "peak hold" if spec.use_peak else "live"
+        title = (f"spectrum {shown} | window {cfg.window_s * 1000:.0f} ms, overlap {cfg.overlap * 100:.1f} % | "
+                 f"{spec.readout}")
+        left_w = self.query_one("#spec_title").size.width
+        cur = " ".join(spec.readout.replace("cursor", "").split())
+        for t in (title, f"{shown} | {cfg.window_s * 1000:.0f} ms, {cfg.overlap * 100:.1f} % | {spec.readout}",
+                  f"{shown} {cfg.window_s * 1000:.0f} ms {cfg.overlap * 100:.0f} % | cursor {cur}",
+                  f"{shown} | cursor {cur}"):
+            if not left_w or len(t) <= left_w:
+                title = t
+                break
+        self._set("#spec_title", title)
+        lines = [f"motor speeds{est}"]
         for m in range(snap.rpm.shape[0]):
             rpm = snap.rpm[m]
             f1 = snap.order_hz[m, 0] if snap.order_hz.size else np.nan
             tel = "telem" if (snap.telemetry.size and snap.telemetry[m]) else ("est" if snap.rpm_estimated else "none")
             thr = snap.throttle[m] * 100 if snap.throttle.size and np.isfinite(snap.throttle[m]) else float("nan")
-            lines.append(f" M{m + 1} {rpm:6.0f} rpm {thr:4.0f}% 1x {f1:5.1f} Hz {tel}")
-        self._set("#motors", "\n".join(lines))
-        # on a short terminal (80x24) the nearest order and its band are shown for modes that are
-        # not clear only, and two bands, so the event log keeps some rows
+            full = f" M{m + 1} {rpm:6.0f} rpm {thr:4.0f}% 1x {f1:5.1f} Hz {tel}"
+            lines.append(full if len(full) <= width else f" M{m + 1} {rpm:5.0f}rpm {thr:3.0f}% 1x {f1:4.0f}Hz")
+        self._set("#motors", lines)
+        # on a short terminal the nearest order and its band are shown for modes that are not clear
+        # only, and two bands, so the event log keeps some rows
         compact = 0 < self.size.height < 32
-        mlines: list = ["modes"]
+        mlines: list = ["frame modes (watch band in rpm)" if width >= 34 else "frame modes"]
         for st in snap.mode_states:
-            mark = STATE_MARK[st["state"]]
-            mlines.append([(" ", BASE), (f"{mark:8s}", STATE_STYLES[st["state"]]),
-                           (f" {st['freq_hz']:6.1f} Hz {st['mode'][:18]}", BASE)])
+            mark = STATE_MARK[st["state"]] if width >= 36 else STATE_MARK_SHORT[st["state"]]
+            head = f" {st['freq_hz']:.0f} Hz {st['mode']}"
+            room = width - len(mark) - 1
+            lead = " " if width >= 36 else ""
+            room -= len(lead) - 1
+            parts = wrap(head, room, indent=4)
+            mlines.append([(lead, BASE), (mark, STATE_STYLES[st["state"]]), (parts[0], BASE)])
+            mlines += [" " * (len(lead) + len(mark)) + x for x in parts[1:]]
             if (compact and st["state"] == "clear") or "order" not in st:
                 continue
             lo, hi = st["watch_rpm"]
             who = "M" + ",".join(str(m) for m in st["motors"])
             k = _short_order(st["order_name"])
-            if compact:  # fits 28 columns: motors, order, its frequency, the watch band in RPM
-                mlines.append(f"   {who} {k} {st['order_hz']:4.0f}Hz {lo:.0f}-{hi:.0f}")
-            else:
-                lead = "" if st["state"] != "clear" else "nearest "
-                mlines.append(f"     {lead}{who} {k} {st['order_hz']:5.0f} Hz, watch {lo:.0f}-{hi:.0f} rpm")
+            lead = "" if st["state"] != "clear" else "nearest "
+            detail = f"     {lead}{who} {k} {st['order_hz']:5.0f} Hz, watch {lo:.0f}-{hi:.0f} rpm"
+            if len(detail) > width:
+                detail = f"   {who} {k} {st['order_hz']:.0f}Hz {lo:.0f}-{hi:.0f}"
+            mlines += wrap(detail, width, indent=5)
         if not snap.mode_states:
-            mlines.append(" no profile: stray peaks only")
-        for b in snap.bands[: 2 if compact else 4]:
+            mlines += wrap(" no profile: stray peaks only", width)
+        for b in snap.bands[: 1 if compact else 4]:
             lo, hi = b["observed_rpm"]
-            mlines.append(f"  seen {b['mode_hz']:.0f} Hz {_short_order(b['order_name'])} {lo:.0f}-{hi:.0f} rpm")
+            mlines += wrap(f"  seen {b['mode_hz']:.0f} Hz {_short_order(b['order_name'])} {lo:.0f}-{hi:.0f} rpm", width)
         self._set("#modes", mlines)
         s = self.live.status()
         cap = f" | capture {s.capture} {s.capture_bytes / 1e6:.1f} MB" if s.capture else ""
         link = "" if s.connected else " | LINK DOWN"
         frozen = " | FROZEN" if s.frozen else ""
-        self._set(
-            "#status",
-            f"{s.source} | {s.rate_hz:.0f} Hz | {s.frames_per_s:4.1f} frames/s | CRC {s.crc_errors} | "
-            f"gaps {s.gaps} ({s.samples_lost} lost) | reconnects {s.reconnects}{cap}{link}{frozen} | ? help"
-        )
+        status = (f"{s.source} | {s.rate_hz:.0f} Hz | {s.frames_per_s:4.1f} spectra/s | CRC {s.crc_errors} | "
+                  f"gaps {s.gaps} ({s.samples_lost} lost) | reconnects {s.reconnects}{cap}{link}{frozen} | ? help")
+        sw = self.size.width
+        if sw and len(status) > sw:
+            status = (f"{s.rate_hz:.0f} Hz | {s.frames_per_s:4.1f} spectra/s | CRC {s.crc_errors} | gaps {s.gaps} | "
+                      f"recon {s.reconnects}{cap}{link}{frozen} | ? help")
+        self._set("#status", status)
 
     # ---------------------------------------------------------------- actions
 
     def action_quit_run(self) -> None:
         self.live.stop()
         self.exit(0)
+
+    def summary_text(self) -> str:
+        from ..headless import bands_table
+
+        eng = self.live.engine
+        lines = [f"run ended after {self.live.snapshot().t_s:.0f} s of stream: {eng.frames} spectra", ""]
+        lines += bands_table([b.as_dict() for b in eng.bands()])
+        strays = eng.stray_peaks()
+        if strays:
+            lines += ["", "stray peaks (not in the profile):"]
+            lines += [f"  {p.freq_hz:.1f} Hz on {p.axis}, {p.over_floor_db:+.1f} dB over the floor" for p in strays]
+        lines += ["", "any key quits"]
+        return "\n".join(lines)
+
+    def action_end_run(self) -> None:
+        """A timed run is over: stop it (motors too) and keep its summary up until a key."""
+        self.live.stop()
+        self.tick(force=True)
+        self.push_screen(SummaryScreen(self.summary_text()))
 
     def action_freeze(self) -> None:
         self.note("display frozen" if self.live.toggle_freeze() else "display resumed")

@@ -18,26 +18,26 @@ from .scale import AXIS_COLOURS, HEAT, MOTOR_COLOURS, column_bins, column_levels
 AXES = ("roll", "pitch", "yaw")
 EIGHTHS = " ▁▂▃▄▅▆▇█"
 ORDER_MARKS = ("1", "2", "b", "B")  # 1x, 2x, blade-pass, 2x blade-pass
-BASE = Style(color="#c8cdd8", bgcolor="#0d1117")
-DIM = Style(color="#5c6370", bgcolor="#0d1117")
-BAND = Style(bgcolor="#1c2a1c")
-CURSOR_BG = "#3a3f4b"
-HEAT_STYLES = [Style(color=c, bgcolor="#0d1117") for c in HEAT]
+BASE = Style(color="#e2dacb", bgcolor="#17150f")
+DIM = Style(color="#8e8372", bgcolor="#17150f")
+BAND = Style(bgcolor="#1f2d23")
+CURSOR_BG = "#4d4437"
+HEAT_STYLES = [Style(color=c, bgcolor="#17150f") for c in HEAT]
 HALF_STYLES = [[Style(color=HEAT[a], bgcolor=HEAT[b]) for b in range(len(HEAT))] for a in range(len(HEAT))]
-GAP_STYLE = Style(color="#ff5555", bgcolor="#0d1117")
-MARK_STYLES = [DIM] + [Style(color=c, bgcolor="#0d1117", bold=True) for c in MOTOR_COLOURS]
-BG_KINDS = ("#0d1117", "#1c2a1c", CURSOR_BG)  # plain, inside a mode's half-power band, cursor
+GAP_STYLE = Style(color="#ff5555", bgcolor="#17150f")
+MARK_STYLES = [DIM] + [Style(color=c, bgcolor="#17150f", bold=True) for c in MOTOR_COLOURS]
+BG_KINDS = ("#17150f", "#1f2d23", CURSOR_BG)  # plain, inside a mode's half-power band, cursor
 BAR_STYLES = [[Style(color=c, bgcolor=bg) for bg in BG_KINDS] for c in AXIS_COLOURS]
 #: crossing-watch states: words and symbols carry the meaning, colour repeats it
 STATE_STYLES = {
-    "clear": Style(color="#7ee081", bgcolor="#0d1117"),
-    "nearing": Style(color="#ffd166", bgcolor="#0d1117", bold=True),
+    "clear": Style(color="#7ee081", bgcolor="#17150f"),
+    "nearing": Style(color="#ffd166", bgcolor="#17150f", bold=True),
     "crossing": Style(color="#ffffff", bgcolor="#8b1e2d", bold=True),
 }
-STRAY_STYLE = Style(color="#c3a6ff", bgcolor="#0d1117")
+STRAY_STYLE = Style(color="#c3a6ff", bgcolor="#17150f")
 CAUTION_STYLE = Style(color="#ffd27a", bgcolor="#5a3a00")
-STATUS_STYLE = Style(color="#c8cdd8", bgcolor="#161b22")
-TITLE_STYLE = Style(color="#8b93a1", bgcolor="#0d1117")
+STATUS_STYLE = Style(color="#e2dacb", bgcolor="#25211a")
+TITLE_STYLE = Style(color="#aa9e8a", bgcolor="#17150f")
 
 
 _EIGHTHS_ARR = np.array(list(EIGHTHS))
@@ -171,7 +171,7 @@ class SpectrumView(Widget):
             row_text = cells.view(f"<U{pw}").ravel().tolist()
             for r in range(per_axis):
                 chars = row_text[r]
-                label = f"{AXES[ax][:4]:>5} " if r == 0 else ticks_db.get(r, "")
+                label = f"{AXES[ax]:>5} " if r == 0 else ticks_db.get(r, "")
                 segs = [Segment(label.ljust(self.LABEL_W)[: self.LABEL_W], DIM)]
                 segs += [Segment(chars[a:b], styles[k]) for a, b, k in runs]
                 lines.append(Strip(segs, w))
@@ -180,10 +180,9 @@ class SpectrumView(Widget):
         step = max(50, int(round(self.fmax_hz / max(1, pw // 8) / 50.0)) * 50)
         for f in range(0, int(self.fmax_hz) + 1, step):
             c = column_of(float(f), s.freqs, edges) if f > 0 else 0
-            if c is not None:
-                for j, ch in enumerate(f"{f}"):
-                    if c + j < pw:
-                        ticks[c + j] = ch
+            label = f"{f}"
+            if c is not None and c + len(label) <= pw and all(ch == " " for ch in ticks[max(0, c - 1): c + len(label)]):
+                ticks[c: c + len(label)] = list(label)  # whole labels only, never cut at the edge
         lines.append(Strip([Segment(" Hz".ljust(self.LABEL_W), DIM), Segment("".join(ticks), DIM)], w))
         while len(lines) < h:
             lines.append(_text_strip("", w))
@@ -196,6 +195,7 @@ class SpectrumView(Widget):
 
     def on_resize(self, event) -> None:
         self._build()
+        self.refresh()
 
     def render_line(self, y: int) -> Strip:
         if y < len(self._lines):
@@ -302,7 +302,12 @@ class WaterfallView(Widget):
         segs = [Segment(f"{self.top_db - self.span_db:5.0f} ", DIM)]
         for st in HEAT_STYLES:
             segs.append(Segment("█", st))
-        segs.append(Segment(f" {self.top_db:.0f} dB re (deg/s)^2/Hz   -- gap", DIM))
+        room = w - 6 - len(HEAT_STYLES)
+        for text in (f" {self.top_db:.0f} dB re (deg/s)^2/Hz   -- gap", f" {self.top_db:.0f} dB re (deg/s)^2/Hz",
+                     f" {self.top_db:.0f} dB", ""):
+            if len(text) <= room:  # the longest legend that fits, never a cut one
+                segs.append(Segment(text, DIM))
+                break
         return Strip(segs).crop_extend(0, w, BASE)  # exactly w cells, or the next widget shifts left
 
 
