@@ -167,6 +167,8 @@ class Assembler:
 
     def _device_info(self, info: fp.DeviceInfo, out: list, host_s: float | None) -> None:
         reboot = self._boot_id is not None and info.boot_id != self._boot_id
+        if not reboot and self.info is not None and info == self.info:
+            return  # the same description again (an answer to a repeated request): nothing changed
         self.info = info
         self._boot_id = info.boot_id
         self._scale = info.dps_per_count

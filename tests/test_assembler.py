@@ -194,3 +194,13 @@ def test_rpm_track_window_equals_the_definition_across_store_compaction():
             np.testing.assert_allclose(mean[i], r_cat[sel].mean(axis=0), rtol=1e-12)
             assert latest[i].tolist() == r_cat[sel][-1].tolist()
             assert ok[i].tolist() == v_cat[sel].all(axis=0).tolist()
+
+
+def test_the_same_description_twice_is_one_device_change():
+    # a device answers REQUEST_INFO and also describes itself at boot: the host hears it twice
+    info = fp.DeviceInfo(boot_id=5)
+    asm = Assembler()
+    out = asm.feed([fp.Received(0, info), fp.Received(1, info)])
+    assert [type(o).__name__ for o in out].count("DeviceChange") == 1
+    out = asm.feed([fp.Received(2, fp.DeviceInfo(boot_id=5, motor_count=6))])  # a real change
+    assert [type(o).__name__ for o in out].count("DeviceChange") == 1
