@@ -256,6 +256,26 @@ def _add_sim(sub) -> None:
     p.set_defaults(func=sim_cli.run)
 
 
+def _add_tap(sub) -> None:
+    p = sub.add_parser(
+        "tap",
+        help="frame modes (frequency, damping, axis) from taps recorded in a capture or CSV",
+        description="Find the taps in a recording made with the motors stopped, identify the frame's modes in "
+                    "each free decay (matrix pencil), combine the taps, and optionally write them as a profile "
+                    "for watch --profile.",
+        epilog="examples:\n  spinrig watch /dev/ttyACM0 --capture taps.spinrec   (tap the frame 5 times, q)\n"
+               "  spinrig tap taps.spinrec\n  spinrig tap taps.spinrec --profile frame.toml\n"
+               "  spinrig tap taps.csv --json",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument("source", metavar="FILE", help="a capture (.spinrec) or CSV with the taps")
+    p.add_argument("--json", action="store_true", help="print one JSON object: taps and modes")
+    p.add_argument("--profile", metavar="FILE", help="write the modes to this profile (asks before replacing)")
+    p.add_argument("--yes", action="store_true", help="replace an existing profile's modes without asking")
+    p.add_argument("--taps", type=bounded(int, 1, 1000, what="taps"), metavar="N", help="use the first N taps only")
+    p.set_defaults(func=lambda a: __import__("monitor.tap_command", fromlist=["run"]).run(a))
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="spinrig",
@@ -269,6 +289,7 @@ def build_parser() -> argparse.ArgumentParser:
     _add_watch(sub)
     _add_replay(sub)
     _add_export(sub)
+    _add_tap(sub)
     _add_ports(sub)
     _add_sim(sub)
     return parser

@@ -51,6 +51,7 @@ def decode_capture(path) -> dict:
         "rpm": np.concatenate(mr) if mr else np.zeros((0, motors)),
         "throttle": np.concatenate(mthr) if mthr else np.zeros((0, motors)),
         "meta": contents.meta,
+        "device": asm.info,
         "cut": contents.cut_message(),
     }
 

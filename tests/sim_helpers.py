@@ -85,3 +85,33 @@ class SessionHost:
                 self.events += self.engine.feed(out)
         if self.engine is not None:
             self.events += self.engine.flush()
+
+
+def tap_capture(path, scenario: str = "quillback7", taps: int = 5, seed: int = 1, spacing_s: float = 1.2):
+    """A capture (as the link writes it) of ``taps`` taps on a scenario's frame, motors stopped:
+    taps at 1.0 s and every ``spacing_s`` after, on the arm tips in turn. Returns the scenario."""
+    from dataclasses import replace
+
+    from monitor.capture import CaptureWriter
+    from monitor.session_rules import SessionRules
+    from simulators.device import DeviceOptions
+    from simulators.faults import FaultPlan
+    from simulators.scenario import Tap, load_scenario
+    from simulators.stream import SimStream, StreamOptions
+
+    sc = load_scenario(scenario)
+    sc = replace(sc, taps=tuple(Tap(at_s=1.0 + spacing_s * k, target=k % sc.motors.count + 1, strength=200.0)
+                                for k in range(taps)))
+    stream = SimStream(sc, DeviceOptions(stream_at_boot=True, script=False, seed=seed), FaultPlan(),
+                       StreamOptions(realtime=False))
+    rules, dec = SessionRules(), fp.StreamDecoder(merge=True)
+    w = CaptureWriter(path, {"port": f"sim://{scenario}", "conditions": {"props": "off"}}, clock=lambda: 0.0)
+    while stream.time_s < 1.0 + spacing_s * taps + 0.2:
+        data = stream.produce_chunk()
+        now = stream.time_s
+        rules.observe(dec.feed(data), now)
+        if rules.last_info is not None and not w.has_device:
+            w.write_device(fp.encode_frame(rules.last_info, 0), now)
+        w.write_data(data, now)
+    w.close({})
+    return sc

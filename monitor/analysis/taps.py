@@ -1,0 +1,208 @@
+"""Tap tests: frame modes (frequency, damping ratio, axis) from the free decays after taps.
+
+A tap is an impulse: the gyro's summed rate envelope jumps far above its background and then
+decays. Each tap's free decay (from just after the impulse to the next tap, at most
+:data:`DECAY_S`) is decimated to about :data:`ANALYSIS_HZ` and handed, all three axes together,
+to the matrix pencil (:mod:`.pencil`, Hua and Sarkar 1990). A decay is *usable* unless it is
+clipped (a sample within 1 % of the gyro's full scale), too short (under :data:`MIN_DECAY_S`
+before the next tap or the end) or a double tap (a second impulse inside it: see
+:func:`_second_impulse`). Every identified
+mode is cross-checked against the half-power width of the decay's spectrum: for a free decay
+much longer than its time constant the power spectrum of one mode is a Lorentzian of full width
+2 zeta f_n at half power (Ewins, Modal Testing, 2000, sec. 3.2; Inman, Engineering Vibration).
+Taps are combined per mode: mean and spread (sample standard deviation) of frequency and damping
+over the taps that found it, and the axis participation (mean share of each axis' amplitude).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import signal
+
+from .pencil import Pole, identify
+
+ANALYSIS_HZ = 2000.0  #: decays are decimated to about this rate (modes of interest lie below 800 Hz)
+DECAY_S = 0.6  #: the longest stretch of a decay analysed, s
+MIN_DECAY_S = 0.25  #: a shorter decay is not usable
+SKIP_S = 0.002  #: the impulse itself is skipped
+SHORT_S = 0.08  #: the start of a decay is also analysed alone (modes that die out within it)
+TAP_OVER = 20.0  #: a tap's envelope stands this many times over the record's median envelope
+TAP_SPACING_S = 0.5  #: peaks closer than this are one tap (or a double tap)
+DOUBLE_SHARE = 0.3  #: a second impulse this large (share of the first) inside a decay spoils it
+RISE = 2.5  #: ... when the level also jumps this many times over the 50 ms before it
+AXES = ("roll", "pitch", "yaw")
+
+
+@dataclass
+class TapDecay:
+    index: int  #: 1-based
+    t_s: float  #: time of the impulse, s (record time)
+    usable: bool
+    why: str  #: "" or why it is not usable
+    poles: list[Pole] = field(default_factory=list)
+    half_power_zeta: list[float | None] = field(default_factory=list)  #: per pole, from the spectrum
+    decay: np.ndarray | None = field(default=None, repr=False)  #: (n, 3) deg/s at ``rate_hz``
+    rate_hz: float = 0.0
+
+    def as_dict(self) -> dict:
+        return {"tap": self.index, "t_s": round(self.t_s, 4), "usable": self.usable, "why": self.why,
+                "poles": [{"freq_hz": round(p.freq_hz, 3), "damping_ratio": round(p.damping_ratio, 5),
+                           "half_power_damping_ratio": None if h is None else round(h, 5)}
+                          for p, h in zip(self.poles, self.half_power_zeta, strict=True)]}
+
+
+@dataclass(frozen=True)
+class TapMode:
+    freq_hz: float
+    freq_sd_hz: float
+    damping_ratio: float
+    damping_sd: float
+    taps: int  #: how many usable taps found it
+    axis: str  #: the axis it shows most on
+    participation: tuple[float, float, float]  #: share of roll, pitch, yaw (sums to 1)
+    half_power_agrees: bool  #: the spectrum's half-power width gives the same damping within 2x
+
+    def as_dict(self) -> dict:
+        return {"freq_hz": round(self.freq_hz, 3), "freq_sd_hz": round(self.freq_sd_hz, 3),
+                "damping_ratio": round(self.damping_ratio, 5), "damping_sd": round(self.damping_sd, 5),
+                "taps": self.taps, "axis": self.axis,
+                "participation": {a: round(p, 3) for a, p in zip(AXES, self.participation, strict=True)},
+                "half_power_agrees": self.half_power_agrees}
+
+
+def find_taps(x: np.ndarray, fs: float) -> np.ndarray:
+    """Sample indices of the taps in ``x`` (n, 3) deg/s at ``fs`` Hz: where the summed rate first
+    stands :data:`TAP_OVER` times over its median, at least :data:`TAP_SPACING_S` after the
+    previous tap began (a second impulse sooner is a double tap inside the first decay); the
+    index is the envelope's peak within 5 ms of that onset."""
+    e = np.abs(x).sum(axis=1)
+    floor = max(float(np.median(e)), 1e-9)
+    over = np.flatnonzero(e > TAP_OVER * floor)
+    starts = []
+    spacing = int(TAP_SPACING_S * fs)
+    for i in over.tolist():
+        if not starts or i - starts[-1] >= spacing:
+            starts.append(i)
+    w = max(1, int(0.005 * fs))
+    return np.array([i + int(np.argmax(e[i: i + w])) for i in starts], dtype=np.int64)
+
+
+def _second_impulse(seg: np.ndarray, fs: float) -> bool:
+    """A second impulse inside a decay ``seg`` (from the tap's peak on): its 5 ms RMS rises to
+    :data:`RISE` times the highest level of the 50 ms before it and to :data:`DOUBLE_SHARE` of the
+    tap's own. A free decay (a sum of decaying modes) stays under its starting level; beating
+    between close modes can rise, but not by that much that early."""
+    w = max(1, int(0.005 * fs))
+    m = seg.shape[0] // w
+    if m < 12:
+        return False
+    r = np.sqrt((seg[: m * w] ** 2).sum(axis=1).reshape(m, w).mean(axis=1))
+    prev = np.array([r[max(0, k - 10): k].max() for k in range(2, m)])
+    rise = r[2:] >= RISE * np.maximum(prev, 1e-12)
+    big = r[2:] >= DOUBLE_SHARE * r[:2].max()
+    return bool(np.any(rise & big))
+
+
+def half_power_zeta(decay: np.ndarray, fs: float, f_n: float) -> float | None:
+    """Damping ratio from the half-power width of the decay's power spectrum around ``f_n``
+    (summed over axes, zero-padded 8x); None when the peak is not resolved."""
+    n = decay.shape[0]
+    nfft = 1 << int(np.ceil(np.log2(8 * n)))
+    p = (np.abs(np.fft.rfft(decay - decay.mean(axis=0), nfft, axis=0)) ** 2).sum(axis=1)
+    f = np.fft.rfftfreq(nfft, 1 / fs)
+    k = int(np.argmin(np.abs(f - f_n)))
+    lo, hi = max(1, k - int(0.03 * f_n / (f[1] - f[0])) - 1), min(len(f) - 1, k + int(0.03 * f_n / (f[1] - f[0])) + 2)
+    k = lo + int(np.argmax(p[lo:hi]))
+    half = p[k] / 2
+    a = k
+    while a > 0 and p[a] > half:
+        a -= 1
+    b = k
+    while b < len(p) - 1 and p[b] > half:
+        b += 1
+    if a == 0 or b == len(p) - 1:
+        return None
+    fa = f[a] + (half - p[a]) / (p[a + 1] - p[a]) * (f[a + 1] - f[a])
+    fb = f[b - 1] + (half - p[b - 1]) / (p[b] - p[b - 1]) * (f[b] - f[b - 1])
+    width = fb - fa
+    if width < 2 * (fs / n):  # narrower than the decay's own resolution: not resolved
+        return None
+    return float(width / (2 * f[k]))
+
+
+def analyse_taps(x: np.ndarray, fs: float, full_scale_dps: float | None = None,
+                 fmin: float = 30.0, fmax: float = 800.0) -> list[TapDecay]:
+    """Every tap in ``x`` (n, 3) deg/s at ``fs`` Hz, its decay checked and identified."""
+    x = np.asarray(x, float)
+    peaks = find_taps(x, fs)
+    q = max(1, int(round(fs / ANALYSIS_HZ)))
+    rate = fs / q
+    out = []
+    for i, p in enumerate(peaks):
+        start = p + max(1, int(SKIP_S * fs))
+        end_limit = peaks[i + 1] - int(0.02 * fs) if i + 1 < len(peaks) else x.shape[0]
+        end = min(end_limit, start + int(DECAY_S * fs))
+        tap = TapDecay(i + 1, p / fs, True, "", rate_hz=rate)
+        out.append(tap)
+        if (end - start) / fs < MIN_DECAY_S:
+            tap.usable, tap.why = False, f"too short ({(end - start) / fs:.2f} s before the next tap or the end)"
+            continue
+        if full_scale_dps and np.max(np.abs(x[p:end])) >= 0.99 * full_scale_dps:
+            tap.usable, tap.why = False, f"clipped (the gyro reached its full scale, {full_scale_dps:g} deg/s)"
+            continue
+        if _second_impulse(x[p:end], fs):
+            tap.usable, tap.why = False, "double tap (a second impulse inside the decay)"
+            continue
+        pad = min(p, int(0.05 * fs))
+        before = x[max(0, p - int(0.1 * fs)): max(0, p - int(0.01 * fs))]
+        bias = np.median(before, axis=0) if before.shape[0] else np.zeros(3)  # the gyro's offset at rest
+        ext = x[start - pad: end] - bias
+        dec = signal.decimate(ext, q, ftype="fir", axis=0, zero_phase=True) if q > 1 else ext
+        dec = dec[int(np.ceil(pad / q)):]
+        tap.decay = dec
+        top = min(fmax, 0.4 * rate)
+        poles = identify(dec, 1.0 / rate, fmin=fmin, fmax=top)
+        # heavily damped or high modes have died out after a few tens of ms: look at the start alone
+        # too, and add what it finds that the whole decay did not
+        short = identify(dec[: int(SHORT_S * rate)], 1.0 / rate, fmin=max(fmin, 3.0 / SHORT_S), fmax=top,
+                         orders=range(8, 31, 2))
+        for q2 in short:
+            if all(abs(q2.freq_hz - p2.freq_hz) > 0.02 * q2.freq_hz for p2 in poles):
+                poles.append(q2)
+        tap.poles = sorted(poles, key=lambda q3: q3.freq_hz)
+        tap.half_power_zeta = [half_power_zeta(dec, rate, pl.freq_hz) for pl in tap.poles]
+    return out
+
+
+def combine(taps: list[TapDecay], f_tol: float = 0.01, min_share: float = 0.5) -> list[TapMode]:
+    """Modes found in at least ``min_share`` of the usable taps (and two of them, when there are
+    two or more): poles of different taps within ``f_tol`` of a mode's running mean are one mode."""
+    usable = [t for t in taps if t.usable]
+    if not usable:
+        return []
+    poles = sorted((p.freq_hz, p, t, h) for t in usable for p, h in zip(t.poles, t.half_power_zeta, strict=True))
+    clusters: list[list] = []
+    for f, p, t, h in poles:
+        if clusters and abs(f - np.mean([c[0] for c in clusters[-1]])) <= f_tol * f:
+            if all(c[2] is not t for c in clusters[-1]):
+                clusters[-1].append((f, p, t, h))
+            continue
+        clusters.append([(f, p, t, h)])
+    need = max(min(2, len(usable)), int(np.ceil(min_share * len(usable))))
+    out = []
+    for c in clusters:
+        if len(c) < need:
+            continue
+        f = np.array([x[0] for x in c])
+        z = np.array([x[1].damping_ratio for x in c])
+        amp = np.array([x[1].amplitudes for x in c])
+        share = amp / np.maximum(amp.sum(axis=1, keepdims=True), 1e-30)
+        part = share.mean(axis=0)
+        hp = [x[3] for x in c if x[3] is not None]
+        agrees = bool(hp) and 0.5 <= float(np.median(hp)) / float(np.mean(z)) <= 2.0
+        out.append(TapMode(float(f.mean()), float(f.std(ddof=1)) if f.size > 1 else 0.0, float(z.mean()),
+                           float(z.std(ddof=1)) if z.size > 1 else 0.0, len(c), AXES[int(np.argmax(part))],
+                           tuple(float(v) for v in part), agrees))
+    return out
