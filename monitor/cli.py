@@ -259,20 +259,25 @@ def _add_sim(sub) -> None:
 def _add_tap(sub) -> None:
     p = sub.add_parser(
         "tap",
-        help="frame modes (frequency, damping, axis) from taps recorded in a capture or CSV",
-        description="Find the taps in a recording made with the motors stopped, identify the frame's modes in "
-                    "each free decay (matrix pencil), combine the taps, and optionally write them as a profile "
-                    "for watch --profile.",
-        epilog="examples:\n  spinrig watch /dev/ttyACM0 --capture taps.spinrec   (tap the frame 5 times, q)\n"
+        help="frame modes (frequency, damping, axis) from taps: live on a port, or in a capture or CSV",
+        description="On a live port, ask for each tap and judge each decay as it comes (motors must be still; "
+                    "on sim:// ports spinrig taps the simulated frame). In a capture or CSV made with the motors "
+                    "stopped, find the taps. Identify the frame's modes in each free decay (matrix pencil), combine "
+                    "the taps, and optionally write them as a profile for watch --profile.",
+        epilog="examples:\n  spinrig tap /dev/ttyACM0 --profile frame.toml   (guided: 5 taps)\n"
+               "  spinrig tap 'sim://quillback7?script=0' --taps 3\n"
                "  spinrig tap taps.spinrec\n  spinrig tap taps.spinrec --profile frame.toml\n"
                "  spinrig tap taps.csv --json",
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("source", metavar="FILE", help="a capture (.spinrec) or CSV with the taps")
+    p.add_argument("source", metavar="SOURCE",
+                   help="a capture (.spinrec) or CSV with the taps, or a live port (guided; motors must be still)")
+    p.add_argument("--baud", type=BAUD, default=921_600, help="serial baud rate for a live port (default 921600)")
     p.add_argument("--json", action="store_true", help="print one JSON object: taps and modes")
     p.add_argument("--profile", metavar="FILE", help="write the modes to this profile (asks before replacing)")
     p.add_argument("--yes", action="store_true", help="replace an existing profile's modes without asking")
-    p.add_argument("--taps", type=bounded(int, 1, 1000, what="taps"), metavar="N", help="use the first N taps only")
+    p.add_argument("--taps", type=bounded(int, 1, 1000, what="taps"), metavar="N",
+                   help="live: how many taps to ask for (default 5); files: use the first N taps only")
     p.set_defaults(func=lambda a: __import__("monitor.tap_command", fromlist=["run"]).run(a))
 
 

@@ -10,7 +10,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .analysis.taps import AXES, analyse_taps, combine
+from .analysis.taps import AXES, analyse_taps, combine, find_taps
 from .profile import Mode, Profile, ProfileError, load_profile
 
 
@@ -57,18 +57,130 @@ def _write_profile(path: Path, modes, source: str, yes: bool) -> str:
     return f"wrote {len(modes)} modes to {path}"
 
 
+LIVE_WAIT_S = 30.0  #: how long one prompt waits for its tap (wall clock: a person is tapping)
+KEEP_S = 20.0  #: samples kept while waiting (bounded memory)
+AFTER_S = 0.75  #: stream time a tap's decay needs after it before it is judged
+
+
+def live_taps(port: str, baud: int, n: int, out=sys.stdout) -> tuple[list, float]:
+    """A guided tap session on a live port: check the motors are still, ask for each tap, judge
+    each decay as it is caught. On ``sim://`` ports spinrig taps the simulated frame itself.
+    Returns (the usable and unusable taps, in order, the sample rate)."""
+    import queue as _queue
+    import time
+
+    import firmware_protocol as fp
+
+    from .assembler import Assembler, DeviceChange, MotorUpdate, Samples
+    from .link import Link, LinkMessage
+
+    link = Link(port, baud)
+    link.start()
+    simulated = port.startswith("sim://")
+    asm = Assembler()
+    chunks: list[np.ndarray] = []
+    kept = 0
+    fs = 0.0
+    fsd = None
+    total = 0  #: samples received (the live session's own sample clock)
+    moving = None
+    found = []
+    try:
+        def pump(timeout=0.1):
+            nonlocal kept, fs, fsd, total, moving
+            try:
+                entry = link.queue.get(timeout=timeout)
+            except _queue.Empty:
+                return
+            if isinstance(entry, LinkMessage):
+                if entry.kind in ("hint", "disconnected", "reconnected", "reboot"):
+                    print(f"  link: {entry.text}", file=out)
+                return
+            now, items = entry
+            for o in asm.feed(items, host_s=now):
+                if isinstance(o, DeviceChange):
+                    fs, fsd = float(o.info.sample_rate_hz), float(o.info.full_scale_dps) or None
+                elif isinstance(o, MotorUpdate):
+                    top = np.nanmax(o.rpm, axis=1) if o.rpm.size else np.zeros(0)
+                    moving = float(top.max()) if top.size else moving
+                elif isinstance(o, Samples) and o.valid is None:
+                    chunks.append(o.dps.astype(float))
+                    kept += o.dps.shape[0]
+                    total += o.dps.shape[0]
+                    while chunks and fs and kept - chunks[0].shape[0] > KEEP_S * fs:
+                        kept -= chunks.pop(0).shape[0]
+
+        start = time.monotonic()
+        while (not fs or moving is None or kept < fs) and time.monotonic() - start < 15.0:
+            pump()
+        if not fs:
+            raise RuntimeError(f"{port}: no gyro data within 15 s ({link.hint()})")
+        if moving is not None and moving > 100.0:
+            raise RuntimeError(f"{port}: a motor turns at {moving:.0f} RPM: stop the motors before a tap test")
+        print(f"{port}: gyro {fs:g} Hz, motors still. Tap the frame firmly and once, near an arm tip; "
+              f"wait for each answer.", file=out)
+        for i in range(1, n + 1):
+            motor = (i - 1) % max(1, asm.info.motor_count if asm.info else 4) + 1
+            print(f"  tap the frame near the tip of arm {motor}, {i} of {n}", file=out, flush=True)
+            if simulated:
+                link.send(fp.SimTap(motor, 200))
+            asked_at, asked_n = time.monotonic(), total
+            caught = None
+            while time.monotonic() - asked_at < LIVE_WAIT_S and caught is None:
+                pump()
+                while not link.queue.empty():  # keep up with the stream before looking
+                    pump(0.0)
+                if not chunks or total - asked_n < AFTER_S * fs:
+                    continue
+                x = np.concatenate(chunks)
+                first = total - x.shape[0]  # sample number of x[0]
+                onsets = [int(i) for i in find_taps(x, fs) if first + i > asked_n - 0.05 * fs]
+                if onsets and total - (first + onsets[0]) >= AFTER_S * fs:
+                    lo = max(0, onsets[0] - int(0.2 * fs))  # the stillness before it, for the offset
+                    judged = analyse_taps(x[lo:], fs, fsd)
+                    caught = judged[0] if judged else None
+                    if caught is not None:
+                        caught.t_s += (first + lo) / fs  # on the session's sample clock
+            if caught is None:
+                print(f"    no tap seen in {LIVE_WAIT_S:.0f} s", file=out)
+                continue
+            caught.index = i
+            found.append(caught)
+            if caught.usable:
+                listed = ", ".join(f"{p.freq_hz:.1f} Hz" for p in caught.poles)
+                print(f"    caught: {len(caught.poles)} modes ({listed})", file=out, flush=True)
+            else:
+                print(f"    not usable: {caught.why}", file=out, flush=True)
+            # the decay must not be seen again as the next tap: keep only what came after it
+            chunks.clear()
+            kept = 0
+    finally:
+        link.close()
+    return found, fs
+
+
+def _is_file(src: str) -> bool:
+    return src.lower().endswith((".csv", ".spinrec")) or Path(src).is_file()
+
+
 def run(args) -> int:
     src = args.source
-    if not (src.lower().endswith(".csv") or src.lower().endswith(".spinrec") or Path(src).is_file()):
-        print(f"spinrig: {src}: tap works on a capture (.spinrec) or a CSV file; record one with "
-              f"`spinrig watch PORT --capture taps.spinrec` while you tap the frame (motors stopped)", file=sys.stderr)
-        return 2
-    try:
-        x, fs, fsd = _record(src)
-    except (ValueError, OSError) as exc:
-        print(f"spinrig: {exc}", file=sys.stderr)
-        return 2
-    taps = analyse_taps(x, fs, fsd)
+    if _is_file(src):
+        try:
+            x, fs, fsd = _record(src)
+        except (ValueError, OSError) as exc:
+            print(f"spinrig: {exc}", file=sys.stderr)
+            return 2
+        taps = analyse_taps(x, fs, fsd)
+    else:
+        import serial
+
+        try:
+            taps, fs = live_taps(src, args.baud, args.taps or 5, out=sys.stderr if args.json else sys.stdout)
+        except (RuntimeError, serial.SerialException, OSError) as exc:
+            print(f"spinrig: {exc}", file=sys.stderr)
+            return 1
+    taps = list(taps)
     if args.taps:
         taps = taps[: args.taps]
     modes = combine(taps)

@@ -51,7 +51,9 @@ class BenchPhysics:
         self._taps.append((int(round(t * self.fs_internal)), int(target), float(strength)))
 
     def _tap_forces(self, start: int, n: int) -> np.ndarray | None:
-        hits = [tp for tp in self._taps if start <= tp[0] < start + n]
+        # a tap asked for "now" may fall just before this block's first internal sample (the gyro's
+        # output count and the internal clock differ by the decimation): it strikes at the block start
+        hits = [(max(tp[0], start), tp[1], tp[2]) for tp in self._taps if tp[0] < start + n]
         if not hits:
             return None
         self._taps = [tp for tp in self._taps if tp[0] >= start + n]
