@@ -1,7 +1,7 @@
 """Run spinrig's benchmarks: ``python3 benchmarks/run.py [NAME ...] [--quick]``.
 
 Each benchmark measures spinrig beside a baseline in the same run and prints ratios and medians.
-Names: decode, sim, engine, screen. Not part of the test suite: no test ever
+Names: decode, sim, engine, screen, tap. Not part of the test suite: no test ever
 asserts a wall-clock time.
 """
 
@@ -19,6 +19,7 @@ BENCHES = {
     "sim": "benchmarks.bench_sim",
     "engine": "benchmarks.bench_engine",
     "screen": "benchmarks.bench_screen",
+    "tap": "benchmarks.bench_tap",
 }
 
 
