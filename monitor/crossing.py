@@ -54,6 +54,8 @@ MARGIN_FRACTION = 0.10  #: the margin is the wider of this share of f_n ...
 MARGIN_HALF_BANDWIDTHS = 3.0  #: ... and this many half-bandwidths zeta f_n
 EXIT_MARGIN = 1.15  #: a group stays nearing while an order is inside this times the margin
 LOOKAHEAD_S = 0.8  #: nearing when the order would reach the watch band within this time
+MAX_STEP_FRACTION = 0.25  #: a speed change between two frames beyond this share is a leap (an estimate
+#: jumping between orders), not a sweep: 2000 RPM/s at 64 ms hops moves 1180 RPM by 11 %
 DWELL_S = 0.5  #: a group steps down only after its reason to stay has been gone this long (s)
 NEAR_LEVEL_DB = 6.0  #: response over its floor that makes an order inside the margin nearing
 #: relative uncertainty of a fitted telemetry speed: the line fitted over 0.5 s stays within 0.5 %
@@ -365,6 +367,11 @@ class CrossingWatch:
         with np.errstate(invalid="ignore"):
             jump = (prev * s < 0) & (np.abs(prev) > w) & (d > w)
         prev_rpm = np.concatenate([self._prev_rpm[None], rpm[:-1]], axis=0)
+        # a reading that leaps between two frames (an estimate changing its mind, a glitch) did not
+        # sweep through what lies between: only a change within MAX_STEP_FRACTION is a step over
+        with np.errstate(invalid="ignore"):
+            smooth = np.abs(rpm - prev_rpm) <= MAX_STEP_FRACTION * np.maximum(np.abs(rpm), np.abs(prev_rpm))
+        jump &= smooth[:, None, :, None]
         with np.errstate(invalid="ignore", divide="ignore"):
             frac = np.where(jump, prev / (prev - s), 0.0)
         rpm_b = rpm[:, None, :, None]

@@ -129,10 +129,17 @@ class Engine:
         self.waterfall_t: RingBuffer | None = None
         self.history: RingBuffer | None = None
 
+    @property
+    def motors(self) -> int:
+        """Motors the detectors follow: the device's, or one speed estimated from the spectrum
+        for a source that reports no motors (a gyro-only log)."""
+        return (self.info.motor_count or 1) if self.info is not None else 0
+
     def _configure(self, info: fp.DeviceInfo) -> None:
         fs = info.sample_rate_hz
-        motors = info.motor_count
-        same = self.info is not None and self.info.sample_rate_hz == fs and self.info.motor_count == motors
+        motors = info.motor_count or 1  # no motors reported: one estimated speed
+        same = (self.info is not None and self.info.sample_rate_hz == fs
+                and self.info.motor_count == info.motor_count)
         self.info = info
         if same and self.stft is not None:
             return
@@ -178,7 +185,7 @@ class Engine:
             self.profile = profile
             if self.info is not None and self.spec is not None:
                 hop_s = self.spec.hop / self.spec.fs_hz
-                motors = self.info.motor_count
+                motors = self.motors
                 self.crossing = self._watch(profile, motors, self.spec.freqs, hop_s)
                 if self.stray is not None:
                     self.stray = StrayPeakFinder(profile, self.spec.freqs, self.spec.nperseg / self.spec.fs_hz)
@@ -217,7 +224,9 @@ class Engine:
                     i = it.info
                     filt = "raw" if i.raw else "FILTERED on the device"
                     text = (f"{i.board_id or 'device'}: gyro {i.sample_rate_hz:g} Hz, {float(i.counts_per_dps):g} "
-                            f"counts per deg/s, {filt}, {i.motor_count} motors, {i.pole_pairs} pole pairs")
+                            f"counts per deg/s, {filt}, "
+                            + (f"{i.motor_count} motors, {i.pole_pairs} pole pairs" if i.motor_count else
+                               "no motor speeds: one speed estimated from the spectrum"))
                     new.append(Notice("device", self._last_t, text, {"reboot": it.reboot}))
                     for w in profile_warnings(self.profile, i.sample_rate_hz)[0 if self.profile.modes else 1:]:
                         new.append(Notice("profile", self._last_t, w))
@@ -362,7 +371,7 @@ class Engine:
         spec = self.spec
         fs = spec.fs_hz
         f = t0.shape[0]
-        motors = self.info.motor_count
+        motors = self.motors
         psd_sum = np.add.reduce(psd, axis=2)
         estimated = np.zeros(f, bool)
         if motors:

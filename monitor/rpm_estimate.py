@@ -15,6 +15,8 @@ from scipy import ndimage
 from .orders import order_multipliers
 from .peaks import interpolate_bin
 
+ORDER_EVIDENCE_DB = 6.0  #: a motor shows at two of its orders at least, each this far over the floor
+
 
 class RpmEstimator:
     def __init__(self, freqs: np.ndarray, blades: int, rpm_min: float = 1500.0, rpm_max: float = 45000.0,
@@ -44,6 +46,8 @@ class RpmEstimator:
         i = int(np.argmax(score))
         if score[i] < 12.0:  # less than about 12 dB of harmonic evidence: no estimate
             return float("nan")
+        if np.count_nonzero(best[i] >= ORDER_EVIDENCE_DB) < 2:
+            return float("nan")  # one line alone (or noise peaks) is not a motor's series of orders
         # refine on the strongest single order of the winner
         amps = np.sqrt(np.maximum(psd_sum, 0.0))
         h = int(np.argmax(best[i] * self.weights))

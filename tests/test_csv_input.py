@@ -81,3 +81,51 @@ def test_a_drifting_clock_is_refused(tmp_path):
     with pytest.raises(CsvError, match=r"line \d+: time_s strays .* sample periods from a constant rate|"
                                        r"line \d+: the sample rate changes"):
         sample_rate(t, "drift.csv")
+
+
+def test_a_gyro_only_file_is_watched_on_an_estimated_speed(tmp_path):
+    """A log with gyro columns only (many rigs log no motor speed): one speed is estimated from the
+    spectrum, flagged as estimated in every event, within 1 % (median) of the true mean speed once
+    the motors run, and the crossings the telemetry run raised are raised (nearly) all."""
+    from monitor.assembler import MotorUpdate, Samples
+    from monitor.csv_input import read_csv_items
+    from monitor.engine import Engine, EngineConfig
+    from monitor.profile import load_profile
+    from tests.conftest import judge_items, sim_items
+
+    items = sim_items("quillback7", seed=6, seconds=40.0)
+    t, g, mt, mr = [], [], [], []
+    for chunk in items:
+        for o in chunk:
+            if isinstance(o, Samples) and o.valid is None:
+                t.append(o.t0_s + np.arange(o.dps.shape[0]) / o.fs_hz)
+                g.append(o.dps)
+            elif isinstance(o, MotorUpdate):
+                mt.append(o.t_s)
+                mr.append(o.rpm.mean(axis=1))
+    t, g, mt, mr = np.concatenate(t), np.concatenate(g), np.concatenate(mt), np.concatenate(mr)
+    f = tmp_path / "gyro_only.csv"
+    with open(f, "w") as out:
+        out.write("time_s,gyro_roll_dps,gyro_pitch_dps,gyro_yaw_dps\n")
+        np.savetxt(out, np.column_stack([t, g]), fmt=["%.6f", "%.4f", "%.4f", "%.4f"], delimiter=",")
+    profile = load_profile("quillback7")
+    eng = Engine(EngineConfig(), profile)
+    events, errors = [], []
+    for chunk in read_csv_items(f):
+        events += eng.feed(chunk)
+        snap = eng.snapshot()
+        true = float(np.interp(snap.t_s, mt, mr))
+        if snap.rpm.size and np.isfinite(snap.rpm[0]) and true > 3000:
+            assert snap.rpm_estimated and snap.rpm.shape == (1,)
+            errors.append(abs(snap.rpm[0] - true) / true)
+    events += eng.flush()
+    assert len(errors) > 50 and np.median(errors) < 0.01  # one reading per 4096-sample chunk
+    crossings = [e for e in events if getattr(e, "state", None) == "crossing"]
+    assert crossings and all(e.estimated for e in crossings)
+    # the script sweeps slowly: no order steps over a band between frames; an estimate that leaps
+    # between orders at spin-up must not pass for one (7 such crossings before MAX_STEP_FRACTION)
+    assert not [e for e in crossings if "stepped over" in e.reason]
+    _, told = judge_items(items, profile)
+    want = {(e.mode_hz, e.order) for e in told if getattr(e, "state", None) == "crossing"}
+    got = {(e.mode_hz, e.order) for e in crossings}
+    assert len(want & got) >= 0.8 * len(want), (sorted(want - got), sorted(got - want))
