@@ -10,6 +10,7 @@ from scipy import signal
 
 from monitor.peaks import find_peaks, interpolate_bin
 from monitor.spectra import RollingSTFT, SpectrumConfig, window
+from tests.conftest import examples
 
 FS = 8000.0
 
@@ -155,3 +156,41 @@ def test_engine_average_and_peak_hold_match_their_definitions():
     np.testing.assert_allclose(snap.ema, e, rtol=1e-9)
     np.testing.assert_allclose(snap.peak, psd.max(axis=0), rtol=1e-12)
     assert snap.frames == psd.shape[0]
+
+
+@settings(max_examples=examples(30), deadline=None)
+@given(st.integers(0, 2**31 - 1), st.lists(st.integers(1, 2000), min_size=1, max_size=6))
+def test_a_masked_frame_equals_the_periodogram_of_its_real_samples(seed, cuts):
+    """Each frame over filled samples is scipy.signal.periodogram of the real samples (mean of the
+    real samples removed, filled ones zeroed; Hann window, density) scaled by sum(w^2)/sum((w m)^2),
+    whatever the holes and however the samples were pushed; its filled share is the mask's."""
+    rng = np.random.default_rng(seed)
+    cfg = SpectrumConfig(FS, 0.064, 0.5)
+    n = cfg.nperseg * 6
+    x = rng.normal(0, 2.0, (n, 3)) + 0.7
+    valid = np.ones(n, bool)
+    for at in rng.integers(0, n - 64, 4):
+        valid[at: at + rng.integers(1, 64)] = False
+    stft = RollingSTFT(cfg)
+    got, shares, starts = [], [], []
+    edges = sorted({min(c, n) for c in np.cumsum(cuts)} | {n})
+    a = 0
+    for b in edges:
+        fb = stft.push(np.where(valid[a:b, None], x[a:b], 0.0), valid[a:b])
+        if fb is not None:
+            got.append(fb.psd)
+            starts.append(fb.start)
+            shares.append(fb.filled if fb.filled is not None else np.zeros(len(fb.start)))
+        a = b
+    psd, start, share = np.concatenate(got), np.concatenate(starts), np.concatenate(shares)
+    w = signal.get_window("hann", cfg.nperseg)
+    for k, s0 in enumerate(start.tolist()):
+        m = valid[s0: s0 + cfg.nperseg].astype(float)
+        assert share[k] == pytest.approx(1 - m.mean())
+        if m.all():
+            continue
+        seg = x[s0: s0 + cfg.nperseg]
+        mean = (seg * m[:, None]).sum(axis=0) / m.sum()
+        _, ref = signal.periodogram((seg - mean) * m[:, None], FS, window=w, detrend=False, axis=0)
+        ref *= (w @ w) / ((w * m) @ (w * m))
+        np.testing.assert_allclose(psd[k], ref, rtol=1e-9, atol=1e-12)
