@@ -194,3 +194,16 @@ def test_a_masked_frame_equals_the_periodogram_of_its_real_samples(seed, cuts):
         _, ref = signal.periodogram((seg - mean) * m[:, None], FS, window=w, detrend=False, axis=0)
         ref *= (w @ w) / ((w * m) @ (w * m))
         np.testing.assert_allclose(psd[k], ref, rtol=1e-9, atol=1e-12)
+
+
+def test_a_frame_with_one_real_sample_removes_that_sample_as_its_mean():
+    # a 16 ms window can sit almost wholly inside a 50 ms bridged hole: with one real sample left,
+    # its mean is that sample, the frame is all zeros after removing it, and so is its PSD
+    cfg = SpectrumConfig(FS, 0.016, 0.0)
+    n = cfg.nperseg
+    x = np.full((n, 3), 5.0)
+    valid = np.zeros(n, bool)
+    valid[n // 2] = True
+    fb = RollingSTFT(cfg).push(np.where(valid[:, None], x, 0.0), valid)
+    assert fb.filled[0] == pytest.approx(1 - 1 / n)
+    np.testing.assert_allclose(fb.psd[0], 0.0, atol=1e-20)  # the mean over 1 sample, not half of it
