@@ -87,13 +87,34 @@ class SessionHost:
             self.events += self.engine.flush()
 
 
+def record_capture(path, stream, seconds: float, start_after_s: float = 0.0, port: str = "sim://") -> None:
+    """Write ``stream`` (a SimStream in fast mode) to a capture the way the link does: raw bytes as
+    they arrive, stamped on arrival, the device description first, the recording starting at
+    ``start_after_s`` of simulated time (mid-stream when > 0)."""
+    from monitor.capture import CaptureWriter
+    from monitor.session_rules import SessionRules
+
+    rules, dec = SessionRules(), fp.StreamDecoder(merge=True)
+    rules.start(0.0)
+    w = None
+    while stream.time_s < seconds:
+        data = stream.produce_chunk()
+        now = stream.time_s
+        rules.observe(dec.feed(data), now)
+        if w is None and now >= start_after_s:
+            w = CaptureWriter(path, {"port": port, "conditions": {"props": "off"}}, clock=lambda: 0.0)
+        if w is not None:
+            if rules.last_info is not None and not w.has_device:
+                w.write_device(fp.encode_frame(rules.last_info, 0), now)
+            w.write_data(data, now)
+    w.close({})
+
+
 def tap_capture(path, scenario: str = "quillback7", taps: int = 5, seed: int = 1, spacing_s: float = 1.2):
     """A capture (as the link writes it) of ``taps`` taps on a scenario's frame, motors stopped:
     taps at 1.0 s and every ``spacing_s`` after, on the arm tips in turn. Returns the scenario."""
     from dataclasses import replace
 
-    from monitor.capture import CaptureWriter
-    from monitor.session_rules import SessionRules
     from simulators.device import DeviceOptions
     from simulators.faults import FaultPlan
     from simulators.scenario import Tap, load_scenario
@@ -104,14 +125,5 @@ def tap_capture(path, scenario: str = "quillback7", taps: int = 5, seed: int = 1
                                 for k in range(taps)))
     stream = SimStream(sc, DeviceOptions(stream_at_boot=True, script=False, seed=seed), FaultPlan(),
                        StreamOptions(realtime=False))
-    rules, dec = SessionRules(), fp.StreamDecoder(merge=True)
-    w = CaptureWriter(path, {"port": f"sim://{scenario}", "conditions": {"props": "off"}}, clock=lambda: 0.0)
-    while stream.time_s < 1.0 + spacing_s * taps + 0.2:
-        data = stream.produce_chunk()
-        now = stream.time_s
-        rules.observe(dec.feed(data), now)
-        if rules.last_info is not None and not w.has_device:
-            w.write_device(fp.encode_frame(rules.last_info, 0), now)
-        w.write_data(data, now)
-    w.close({})
+    record_capture(path, stream, 1.0 + spacing_s * taps + 0.2, port=f"sim://{scenario}")
     return sc

@@ -38,7 +38,7 @@ from simulators.faults import FaultPlan
 from simulators.scenario import load_scenario
 from simulators.stream import SimStream, StreamOptions
 from tests.conftest import examples
-from tests.sim_helpers import SessionHost
+from tests.sim_helpers import SessionHost, record_capture
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -228,28 +228,11 @@ def test_a_short_run_says_why_there_is_no_drift_figure():
 # ---------------------------------------------------------------- captures
 
 
-def _capture_of_a_stream(path, seconds=3.0, start_after_s=0.0) -> bytes:
-    """A capture the way the link writes one: raw bytes as they arrive, the device description
-    first when the recording starts mid-stream. Returns every byte the device sent."""
+def _capture_of_a_stream(path, seconds=3.0, start_after_s=0.0) -> None:
+    """A Quillback 7 stream recorded as the link records it (``tests.sim_helpers.record_capture``)."""
     stream = SimStream(load_scenario("quillback7"), DeviceOptions(stream_at_boot=True, seed=2), FaultPlan(),
                        StreamOptions(realtime=False))
-    rules, dec = SessionRules(), fp.StreamDecoder(merge=True)
-    rules.start(0.0)
-    w = None
-    sent = b""
-    while stream.time_s < seconds:
-        now = stream.time_s
-        data = stream.produce_chunk()
-        sent += data
-        rules.observe(dec.feed(data), now)
-        if w is None and now >= start_after_s:
-            w = CaptureWriter(path, {"port": "sim://quillback7"}, clock=lambda: 0.0)
-        if w is not None:
-            if rules.last_info is not None and not w.has_device:
-                w.write_device(fp.encode_frame(rules.last_info, 0), now)
-            w.write_data(data, now)
-    w.close({})
-    return sent
+    record_capture(path, stream, seconds, start_after_s, port="sim://quillback7")
 
 
 def test_a_capture_started_mid_stream_replays_on_its_own(tmp_path):

@@ -21,6 +21,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import signal
 
+from ..stray import half_power_width_hz
 from .pencil import Pole, identify
 
 ANALYSIS_HZ = 2000.0  #: decays are decimated to about this rate (modes of interest lie below 800 Hz)
@@ -107,29 +108,24 @@ def _second_impulse(seg: np.ndarray, fs: float) -> bool:
 
 def half_power_zeta(decay: np.ndarray, fs: float, f_n: float) -> float | None:
     """Damping ratio from the half-power width of the decay's power spectrum around ``f_n``
-    (summed over axes, zero-padded 8x); None when the peak is not resolved."""
+    (summed over axes, zero-padded 8x; :func:`monitor.stray.half_power_width_hz`); None when the
+    peak is not resolved (it does not fall to half on both sides, or it is narrower than the
+    decay's own resolution)."""
     n = decay.shape[0]
     nfft = 1 << int(np.ceil(np.log2(8 * n)))
     p = (np.abs(np.fft.rfft(decay - decay.mean(axis=0), nfft, axis=0)) ** 2).sum(axis=1)
-    f = np.fft.rfftfreq(nfft, 1 / fs)
-    k = int(np.argmin(np.abs(f - f_n)))
-    lo, hi = max(1, k - int(0.03 * f_n / (f[1] - f[0])) - 1), min(len(f) - 1, k + int(0.03 * f_n / (f[1] - f[0])) + 2)
+    df = fs / nfft
+    k = int(round(f_n / df))
+    reach = int(0.03 * f_n / df) + 1
+    lo, hi = max(1, k - reach), min(p.size - 1, k + reach + 1)
     k = lo + int(np.argmax(p[lo:hi]))
-    half = p[k] / 2
-    a = k
-    while a > 0 and p[a] > half:
-        a -= 1
-    b = k
-    while b < len(p) - 1 and p[b] > half:
-        b += 1
-    if a == 0 or b == len(p) - 1:
+    below = p <= p[k] / 2
+    if not (below[:k].any() and below[k + 1:].any()):
         return None
-    fa = f[a] + (half - p[a]) / (p[a + 1] - p[a]) * (f[a + 1] - f[a])
-    fb = f[b - 1] + (half - p[b - 1]) / (p[b] - p[b - 1]) * (f[b] - f[b - 1])
-    width = fb - fa
-    if width < 2 * (fs / n):  # narrower than the decay's own resolution: not resolved
+    width = half_power_width_hz(p, k, df)
+    if width < 2 * (fs / n):
         return None
-    return float(width / (2 * f[k]))
+    return float(width / (2 * k * df))
 
 
 def analyse_taps(x: np.ndarray, fs: float, full_scale_dps: float | None = None,
