@@ -10,7 +10,7 @@ from __future__ import annotations
 from binascii import crc_hqx
 
 from . import stuffing
-from .constants import CRC_INIT, MAX_BODY, MAX_ENCODED, MAX_PAYLOAD, MIN_BODY
+from .constants import CRC_INIT, MAX_ENCODED, MAX_PAYLOAD, MIN_BODY
 from .messages import TYPE_OF, Message, encode_payload
 
 
@@ -46,7 +46,8 @@ class FrameError(ValueError):
 
 
 def unstuff_body(encoded: bytes) -> bytes:
-    """Checked body of one encoded frame (no delimiter). Raises FrameError."""
+    """Checked body of one encoded frame (no delimiter). Raises FrameError. COBS adds at least one
+    byte, so the encoded limit (MAX_ENCODED) also bounds the body to MAX_BODY."""
     if len(encoded) > MAX_ENCODED:
         raise FrameError("oversize", f"{len(encoded)} encoded bytes, limit {MAX_ENCODED}")
     try:
@@ -55,8 +56,6 @@ def unstuff_body(encoded: bytes) -> bytes:
         raise FrameError("malformed", f"COBS: {exc}") from None
     if len(body) < MIN_BODY:
         raise FrameError("malformed", f"body of {len(body)} bytes, need at least {MIN_BODY}")
-    if len(body) > MAX_BODY:
-        raise FrameError("oversize", f"body of {len(body)} bytes, limit {MAX_BODY}")
     if crc_hqx(body, CRC_INIT) != 0:
         raise FrameError("crc_error", "CRC mismatch")
     return body

@@ -89,3 +89,62 @@ def test_cobs_decoders_agree_on_garbage(data):
         except stuffing.DecodeError:
             outcomes.append("error")
     assert outcomes[0] == outcomes[1]
+
+
+# --- one checked frame (framing.unstuff_body, SPEC 3): every verdict, at its exact limit ---
+
+from firmware_protocol.constants import MAX_BODY, MAX_ENCODED, MIN_BODY  # noqa: E402
+from firmware_protocol.framing import FrameError, encode_raw, unstuff_body  # noqa: E402
+
+
+@given(st.integers(0, 255), st.integers(0, 255), st.binary(max_size=250))
+def test_a_valid_frame_unstuffs_to_its_body(t, seq, payload):
+    wire = encode_raw(t, seq, payload)
+    assert wire[-1] == 0 and 0 not in wire[:-1]
+    assert unstuff_body(wire[:-1]) == frame_body(t, seq, payload)
+
+
+def verdict(encoded: bytes) -> tuple[str, str]:
+    with pytest.raises(FrameError) as info:
+        unstuff_body(encoded)
+    return info.value.verdict, str(info.value)
+
+
+@given(st.integers(0, 255), st.integers(0, 255), st.binary(min_size=0, max_size=250), st.data())
+def test_any_single_bit_flip_is_a_crc_error_or_malformed(t, seq, payload, data):
+    body = bytearray(frame_body(t, seq, payload))
+    bit = data.draw(st.integers(0, 8 * len(body) - 1))
+    body[bit // 8] ^= 1 << (bit % 8)
+    # CRC-16 detects every single-bit error (Koopman and Chakravarty 2004: Hamming distance >= 2)
+    v, text = verdict(stuffing.encode(bytes(body)))
+    assert (v, text) == ("crc_error", "crc_error: CRC mismatch")
+
+
+def test_length_limits_are_exact():
+    smallest = frame_body(1, 2, b"")
+    assert len(smallest) == MIN_BODY and unstuff_body(stuffing.encode(smallest)) == smallest
+    assert verdict(stuffing.encode(smallest[:-1])) == (
+        "malformed", f"malformed: body of {MIN_BODY - 1} bytes, need at least {MIN_BODY}")
+    largest = frame_body(1, 2, bytes(range(1, 251)))
+    assert len(largest) == MAX_BODY and unstuff_body(stuffing.encode(largest)) == largest
+    over = largest + b"\x01"  # one byte too many: COBS of 255 non-zero bytes is 257 bytes, over MAX_ENCODED
+    enc = stuffing.encode(over)
+    assert len(enc) > MAX_ENCODED
+    assert verdict(enc) == ("oversize", f"oversize: {len(enc)} encoded bytes, limit {MAX_ENCODED}")
+    # COBS adds at least one byte, so no body over MAX_BODY fits in MAX_ENCODED: the encoded
+    # length is the one limit (framing has no second, unreachable body check)
+    enc = stuffing.encode(bytes(MAX_BODY + 1))
+    assert len(enc) == MAX_ENCODED + 1 and verdict(enc)[0] == "oversize"
+    enc = stuffing.encode(bytes(MAX_BODY))
+    assert len(enc) == MAX_ENCODED
+    assert verdict(enc) == ("crc_error", "crc_error: CRC mismatch")  # the right length, a bad CRC
+
+
+def test_bad_cobs_is_malformed_and_says_so():
+    v, text = verdict(b"\x05\x11")  # a code byte pointing past the end
+    assert v == "malformed" and text.startswith("malformed: COBS: ")
+
+
+def test_frame_error_is_a_value_error_with_its_verdict():
+    e = FrameError("crc_error", "x")
+    assert isinstance(e, ValueError) and e.verdict == "crc_error" and str(e) == "crc_error: x"
