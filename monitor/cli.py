@@ -12,6 +12,7 @@ examples:
   spinrig demo                 see the whole idea on a simulated airframe
   spinrig watch PORT --headless --profile FILE    watch a live airframe
   spinrig replay FILE --headless                  a capture through the same pipeline
+  spinrig analyze FILE --report DIR               modes, RPM bands, imbalance of a sweep
   spinrig ports                list serial ports
   spinrig sim quillback7       a simulated flight controller on a pty
 
@@ -281,6 +282,32 @@ def _add_tap(sub) -> None:
     p.set_defaults(func=lambda a: __import__("monitor.tap_command", fromlist=["run"]).run(a))
 
 
+def _add_analyze(sub) -> None:
+    p = sub.add_parser(
+        "analyze",
+        help="a sweep's frame modes, the RPM bands that excite them, imbalance and filter guidance",
+        description="Analyse a capture or CSV of a throttle sweep: the order-tracked map (PSD averaged in RPM bins), "
+                    "the frame modes the sweep excites, for every mode and motor order the RPM band that excites it "
+                    "(seen and predicted, with its peak level), a motor imbalance ranking (one-at-a-time runs, or "
+                    "motors at clearly different speeds) and filter guidance. Without motor telemetry the speed is "
+                    "estimated from the spectrum and flagged.",
+        epilog="examples:\n  spinrig analyze sweep.spinrec\n  spinrig analyze sweep.spinrec --json\n"
+               "  spinrig analyze sweep.csv --blades 3 --report sweep-report\n"
+               "  spinrig analyze one-at-a-time.spinrec --profile frame.toml",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument("file", metavar="FILE", help="a capture (.spinrec) or CSV of a sweep")
+    p.add_argument("--json", action="store_true", help="print one JSON object (modes, bands, imbalance, guidance)")
+    p.add_argument("--report", metavar="DIR", help="write report.html (self-contained), the plots as PNG and "
+                   "analysis.json into DIR")
+    p.add_argument("--blades", type=bounded(int, 1, 8, what="blades"), help="prop blades, 1 to 8 (default: the "
+                   "profile's, else 2)")
+    p.add_argument("--profile", metavar="FILE", help="frame profile (TOML): its blade count")
+    p.add_argument("--estimate-rpm", action="store_true",
+                   help="estimate the speed from the spectrum even when the file has motor telemetry")
+    p.set_defaults(func=lambda a: __import__("monitor.analyze_command", fromlist=["run"]).run(a))
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="spinrig",
@@ -295,6 +322,7 @@ def build_parser() -> argparse.ArgumentParser:
     _add_replay(sub)
     _add_export(sub)
     _add_tap(sub)
+    _add_analyze(sub)
     _add_ports(sub)
     _add_sim(sub)
     return parser

@@ -60,6 +60,8 @@ def add_arguments(p) -> None:
                    help="emulate a UART at this baud (300 to 12000000): paced, FIFO overflow drops bytes")
     p.add_argument("--stream", action="store_true", help="stream from boot without waiting for the host")
     p.add_argument("--no-script", action="store_true", help="do not run the scenario's stand-alone throttle script")
+    p.add_argument("--one-at-a-time", action="store_true",
+                   help="play the throttle script once per motor in turn, the others still (imbalance runs)")
     p.add_argument("--tap", action="append", default=[], metavar="AT[:TARGET[:STRENGTH]]",
                    help="tap the frame at AT s; TARGET 0 stack, k arm k; STRENGTH in 1e-4 N s (repeatable)")
     p.add_argument("--list", action="store_true", help="list the built-in scenarios and exit")
@@ -102,7 +104,8 @@ def run(args) -> int:
         scenario = replace(scenario, taps=tuple(sorted((*scenario.taps, *taps), key=lambda t: t.at_s)))
     stream = SimStream(
         scenario,
-        DeviceOptions(seed=args.seed, stream_at_boot=args.stream, script=not args.no_script),
+        DeviceOptions(seed=args.seed, stream_at_boot=args.stream, script=not args.no_script,
+                      one_at_a_time=args.one_at_a_time),
         faults,
         StreamOptions(realtime=not args.fast, baud=args.baud),
     )

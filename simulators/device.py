@@ -28,6 +28,8 @@ class DeviceOptions:
     seed: int = 0
     stream_at_boot: bool = False  #: start streaming without waiting for STREAM_CONTROL
     script: bool = True  #: spin the scenario's throttle script while no host has armed
+    #: play the script once per motor in turn (motor 1 alone, then motor 2 alone, ...), the others still
+    one_at_a_time: bool = False
     drift_ppm: float = 0.0  #: device clock runs fast by this many parts per million
     clock_start_us: int = 0  #: device clock at boot (set near 2**32 to test the wrap)
     #: control periods simulated per step: host commands take effect at chunk boundaries (40 ms)
@@ -197,7 +199,14 @@ class SimDevice:
             return np.asarray(self.safety.throttle, dtype=float)
         if not self.options.script or not s.script:
             return np.zeros(s.motors.count)
-        thr = s.script_throttle(t_s) * np.asarray(s.script_motors) * 10000.0
+        if self.options.one_at_a_time:
+            period = s.script_duration_s
+            turn = int(t_s // period) if period > 0 else 0
+            thr = np.zeros(s.motors.count)
+            if turn < s.motors.count:
+                thr[turn] = s.script_throttle(t_s - turn * period) * s.script_motors[turn] * 10000.0
+        else:
+            thr = s.script_throttle(t_s) * np.asarray(s.script_motors) * 10000.0
         return np.minimum(thr, s.device.throttle_ceiling)
 
     def step(self) -> list[tuple[float, bytes]]:

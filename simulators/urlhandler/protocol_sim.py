@@ -5,7 +5,7 @@ It goes through exactly the code path of a real port (``serial_for_url`` with py
 
 - ``seed=N`` (default 0), ``fast=1`` (as fast as the reader reads; default real time),
 - ``stream=1`` (stream from boot without STREAM_CONTROL), ``script=0`` (no stand-alone throttle
-  script), ``clock=US`` (device clock at boot), ``baud=N`` (emulate a UART at N baud),
+  script), ``solo=1`` (the script once per motor in turn, for imbalance runs), ``clock=US`` (device clock at boot), ``baud=N`` (emulate a UART at N baud),
 - ``fault=NAME=VALUE`` (repeatable; ``simulators/faults.py``).
 
 Example: ``serial.serial_for_url("sim://quillback7?seed=1&fault=corrupt=0.01", timeout=0.05)``.
@@ -29,7 +29,7 @@ from ..stream import SimStream, StreamOptions
 _LIVE: dict[str, tuple[SimStream, float, threading.Lock]] = {}
 _LIVE_LOCK = threading.Lock()
 
-OPTIONS = ("seed", "fast", "stream", "script", "clock", "baud", "fault")
+OPTIONS = ("seed", "fast", "stream", "script", "solo", "clock", "baud", "fault")
 
 
 def parse_url(url: str) -> tuple[str, dict]:
@@ -57,6 +57,7 @@ def parse_url(url: str) -> tuple[str, dict]:
         "fast": bool(one_int("fast", 0)),
         "stream": bool(one_int("stream", 0)),
         "script": bool(one_int("script", 1)),
+        "solo": bool(one_int("solo", 0)),
         "clock": one_int("clock", 0),
         "baud": one_int("baud", 0) or None,
         "faults": query.get("fault", []),
@@ -70,7 +71,8 @@ def _make_stream(url: str) -> SimStream:
         faults = FaultPlan.parse(o["faults"])
     except (ScenarioError, FaultError) as exc:
         raise SerialException(f"{url}: {exc}") from None
-    device = DeviceOptions(seed=o["seed"], stream_at_boot=o["stream"], script=o["script"], clock_start_us=o["clock"])
+    device = DeviceOptions(seed=o["seed"], stream_at_boot=o["stream"], script=o["script"],
+                           one_at_a_time=o["solo"], clock_start_us=o["clock"])
     return SimStream(scenario, device, faults, StreamOptions(realtime=not o["fast"], baud=o["baud"]))
 
 
