@@ -127,3 +127,23 @@ def tap_capture(path, scenario: str = "quillback7", taps: int = 5, seed: int = 1
                        StreamOptions(realtime=False))
     record_capture(path, stream, 1.0 + spacing_s * taps + 0.2, port=f"sim://{scenario}")
     return sc
+
+
+def sweep_capture(path, scenario: str, seed: int = 1, one_at_a_time: bool = False, telemetry: bool = True):
+    """A capture (as the link writes it) of a scenario's own throttle script: all motors together,
+    or the script once per motor in turn (``one_at_a_time``). Returns the scenario."""
+    from dataclasses import replace
+
+    from simulators.device import DeviceOptions
+    from simulators.faults import FaultPlan
+    from simulators.scenario import load_scenario
+    from simulators.stream import SimStream, StreamOptions
+
+    sc = load_scenario(scenario)
+    if not telemetry:
+        sc = replace(sc, motors=replace(sc.motors, telemetry=False))
+    opts = DeviceOptions(stream_at_boot=True, seed=seed, one_at_a_time=one_at_a_time)
+    stream = SimStream(sc, opts, FaultPlan(), StreamOptions(realtime=False))
+    turns = sc.motors.count if one_at_a_time else 1
+    record_capture(path, stream, sc.script_duration_s * turns, port=f"sim://{scenario}")
+    return sc

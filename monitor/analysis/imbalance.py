@@ -34,8 +34,8 @@ class Imbalance:
     note: str
 
     def as_dict(self) -> dict:
-        return {"method": self.method, "note": self.note,
-                "motors": [{k: (round(v, 4) if isinstance(v, float) else v) for k, v in d.items()} for d in self.figures]}
+        rows = [{k: (round(v, 4) if isinstance(v, float) else v) for k, v in d.items()} for d in self.figures]
+        return {"method": self.method, "note": self.note, "motors": rows}
 
 
 def tone_amplitude(psd_peak: np.ndarray, bin_hz: float) -> np.ndarray:

@@ -39,8 +39,10 @@ def _plots(a) -> dict[str, bytes]:
     m = a.map
     out: dict[str, bytes] = {}
     top_order = max(k for k, _ in _orders(a))
-    reach = max([1.3 * md.freq_hz for md in a.modes] + ([1.05 * top_order * float(m.rpm.max()) / 60] if m.rpm.size else []),
-                default=0.8 * float(m.freqs[-1]))
+    reach = [1.3 * md.freq_hz for md in a.modes]
+    if m.rpm.size:
+        reach.append(1.05 * top_order * float(m.rpm.max()) / 60)
+    reach = max(reach, default=0.8 * float(m.freqs[-1]))
     fmax = min(0.8 * float(m.freqs[-1]), reach)
     if m.rpm.size >= 2:
         fig, ax = plt.subplots(figsize=(11, 5.2), layout="constrained")
@@ -137,11 +139,13 @@ def page(a, images: dict[str, bytes], extra_html: str = "") -> str:
         ["motors", d["motors"]], ["blades", d["blades"]],
         ["speeds", "estimated from the spectrum" if d["rpm_estimated"] else "motor telemetry"],
         ["swept", f"{d['rpm_swept'][0]}-{d['rpm_swept'][1]} RPM" if d["rpm_swept"] else "nothing swept"]]
-    modes = [[f"{m['freq_hz']:.1f}", "-" if m["damping_ratio"] is None else f"{100 * m['damping_ratio']:.1f} %", m["axis"],
-              f"{m['prominence_db']:.1f}"] for m in d["modes"]]
+    modes = [[f"{m['freq_hz']:.1f}", "-" if m["damping_ratio"] is None else f"{100 * m['damping_ratio']:.1f} %",
+              m["axis"], f"{m['prominence_db']:.1f}"] for m in d["modes"]]
     bands = [[f"{b['mode_hz']:.0f}", b["order_name"], f"{b['rpm_low']:.0f}-{b['rpm_high']:.0f}",
               f"{b['predicted_low']:.0f}-{b['predicted_high']:.0f}", f"{b['peak_db']:.1f}",
               "yes" if b["observed"] else "no"] for b in d["bands"]]
+    band_table = _table(bands, ["mode Hz", "order", "RPM seen", "RPM predicted", "peak dB", "seen"]) if bands else \
+        "<p>none</p>"
     imb = d["imbalance"]
     imb_rows = [[r["motor"], f"{r['figure']:.4f}", f"{r['ratio']:.2f}", "out of balance" if r["flagged"] else ""]
                 for r in imb["motors"]]
@@ -165,7 +169,7 @@ def page(a, images: dict[str, bytes], extra_html: str = "") -> str:
 <h2>Run</h2>{_table(cond_rows, ["", ""])}
 <h2>Campbell map</h2>{img("campbell.png", "Campbell map")}
 <h2>Frame modes</h2>{_table(modes, ["Hz", "damping", "main axis", "prominence dB"]) if modes else "<p>none found</p>"}
-<h2>Bands (strongest first)</h2>{_table(bands, ["mode Hz", "order", "RPM seen", "RPM predicted", "peak dB", "seen"]) if bands else "<p>none</p>"}
+<h2>Bands (strongest first)</h2>{band_table}
 {img("orders.png", "order levels against RPM")}
 <h2>Averaged spectra</h2>{img("spectra.png", "averaged spectra per axis")}
 <h2>Imbalance</h2><p>{html.escape(imb['method'])}: {html.escape(imb['note'])}</p>

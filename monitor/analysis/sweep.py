@@ -20,6 +20,9 @@ from .sweep_map import SweepMap, build_map, frame_length, psd_frames, speeds_at
 from .sweep_modes import Band, SweepMode, find_modes, order_bands
 
 
+MASKED_ORDERS = [float(k) for k in range(1, 13)]  #: order lines left out of the fixed spectrum (1x..12x)
+
+
 @dataclass
 class SweepAnalysis:
     record: Record
@@ -82,7 +85,7 @@ def analyse(rec: Record, blades: int = 2, estimate_rpm: bool | None = None) -> S
         speeds = speeds_at(tc, rec.rpm_time_s, rec.rpm)
         throttle = speeds_at(tc, rec.rpm_time_s, rec.throttle) if np.any(np.isfinite(rec.throttle)) else None
     m = build_map(frames, freqs, speeds, throttle, frame_s=n / rec.fs_hz)
-    modes, fixed = find_modes(m)
+    modes, fixed = find_modes(m, MASKED_ORDERS)
     bands = order_bands(m, modes, orders_followed(blades))
     imb = rank_imbalance(frames, float(freqs[1]), speeds) if not estimated else \
         Imbalance("not separable", [], "no motor telemetry: imbalance needs each motor's own speed")

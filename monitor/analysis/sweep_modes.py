@@ -5,17 +5,18 @@ bin of the map the spectrum is normalised by its median level (dB), and the bins
 with a 25 % trimmed mean (Tukey's trimmed mean; it ignores the few bins where an order line or a
 dwell tone sits at a frequency), so the order lines smear out and the fixed resonances add up
 (the frame's response to the motors' broadband excitation and to every order that passes). A mode
-is a peak of that fixed-frequency spectrum with a prominence of at least ``max(3 dB, 8 sigma)``
-(sigma the robust spread, 1.4826 x MAD, of the spectrum about its 80 Hz running median), merged
-across axes within 3 %; its frequency is refined by parabolic interpolation of the dB peak
+is a peak of that fixed-frequency spectrum with a prominence of at least 3 dB that also stands
+``max(3 dB, 6 sigma)`` over the spectrum's 80 Hz running median (sigma the robust spread,
+1.4826 x MAD, of the spectrum about that median: white noise alone never passes), merged
+across axes within 3 %; its main axis is the one with the largest mean PSD there; its frequency is refined by parabolic interpolation of the dB peak
 (Gaussian interpolation; Gasior and Gonzalez, CERN AB-Note-2004-021), its damping ratio from the
 half-power width, zeta = width / (2 f) (half-power method; any vibration textbook, e.g. Rao,
 Mechanical Vibrations, section 3.5), given only where the peak stands 6 dB or more over the
-running median (else None).
+running median, is at least 3 frequency bins wide and has no other mode within 12 % (else None).
 
 Bands: order k of a motor excites a mode of frequency f and damping zeta over the predicted RPM
 band 60 f (1 -+ zeta) / k. The observed band is where the order cut (the map along k n / 60)
-stays within 3 dB of its largest value near the mode; ``peak_db`` is that value in dB re
+stays within 3 dB of its largest value within 3 % of the mode (and within 5 %); ``peak_db`` is that value in dB re
 1 (deg/s)^2/Hz on the mode's main axis.
 """
 
@@ -32,9 +33,12 @@ from .sweep_map import SweepMap
 AXES = ("roll", "pitch", "yaw")
 TRIM = 0.25  #: fraction of RPM bins dropped at each end before averaging
 MIN_PROMINENCE_DB = 3.0
-SIGMA_FACTOR = 8.0
+SIGMA_FACTOR = 6.0
 MERGE_FRACTION = 0.03
 DAMPING_MIN_DB = 6.0
+NEAR_FRACTION = 0.03  #: an order's peak counts for a mode within 3 % of it (a sweep shifts the peak a little)
+REACH_FRACTION = 0.05  #: the observed band stops 5 % from the mode (a neighbour's crossing is not this mode's)
+PAIR_FRACTION = 0.12  #: modes closer than this overlap: no damping from their half-power width
 DEFAULT_ZETA = 0.03  #: for a predicted band when a mode's damping could not be measured (common practice)
 
 
@@ -43,8 +47,8 @@ class SweepMode:
     freq_hz: float
     damping_ratio: float | None
     axis: str
-    prominence_db: float  #: over the fixed-frequency spectrum's running median, main axis
-    participation: dict = field(default_factory=dict)  #: share of the response per axis (sums to 1)
+    prominence_db: float  #: over the fixed-frequency spectrum's running median, on the axis it was found on
+    participation: dict = field(default_factory=dict)  #: share of the mean PSD at the mode per axis (sums to 1)
 
     def as_dict(self) -> dict:
         return {"freq_hz": round(self.freq_hz, 2),
@@ -83,14 +87,26 @@ class Band:
         return d
 
 
-def fixed_spectrum(m: SweepMap) -> np.ndarray:
-    """(bins, 3) the trimmed mean over RPM bins of each bin's spectrum in dB over its median."""
+def fixed_spectrum(m: SweepMap, orders: list[float] | None = None, mask_bins: int = 4) -> np.ndarray:
+    """(bins, 3) the trimmed mean over RPM bins of each bin's spectrum in dB over its median. With
+    ``orders``, the frequency bins within ``mask_bins`` (plus the motors' spread) of each order
+    line of each RPM bin are left out first, so a strong clean order line and its leakage cannot
+    add up to a fixed peak."""
     db = 10 * np.log10(np.maximum(m.psd, 1e-30))
     norm = db - np.median(db, axis=1, keepdims=True)
-    s = np.sort(norm, axis=0)
-    b = s.shape[0]
-    a, z = int(b * TRIM), max(int(b * (1 - TRIM)), int(b * TRIM) + 1)
-    return s[a:z].mean(axis=0)
+    if orders:
+        k = np.arange(m.freqs.size)
+        bad = np.zeros((m.rpm.size, m.freqs.size), bool)
+        for o in orders:
+            centre = o * m.rpm / 60.0 / m.bin_hz
+            half = mask_bins + 0.5 * o * np.nan_to_num(m.spread) / 60.0 / m.bin_hz
+            bad |= np.abs(k[None, :] - centre[:, None]) <= half[:, None]
+        norm = np.where(bad[:, :, None], np.nan, norm)
+    lo, hi = np.nanpercentile(norm, [100 * TRIM, 100 * (1 - TRIM)], axis=0, keepdims=True)
+    keep = (norm >= lo) & (norm <= hi)
+    cnt = keep.sum(axis=0)
+    out = np.where(keep, norm, 0.0).sum(axis=0) / np.maximum(cnt, 1)
+    return np.where(cnt > 0, out, 0.0)
 
 
 def _parabolic(y: np.ndarray, k: int) -> float:
@@ -101,11 +117,13 @@ def _parabolic(y: np.ndarray, k: int) -> float:
     return 0.0
 
 
-def find_modes(m: SweepMap, fmin_hz: float = 40.0, fmax_hz: float | None = None) -> tuple[list[SweepMode], np.ndarray]:
-    """The modes of a sweep map, strongest first, and the fixed-frequency spectrum (bins, 3) dB."""
+def find_modes(m: SweepMap, orders: list[float] | None = None, fmin_hz: float = 40.0,
+               fmax_hz: float | None = None) -> tuple[list[SweepMode], np.ndarray]:
+    """The modes of a sweep map, by frequency, and the fixed-frequency spectrum (bins, 3) dB;
+    ``orders`` (multiples of the shaft rate) are masked out of it (:func:`fixed_spectrum`)."""
     if m.rpm.size < 4:
         return [], np.zeros((m.freqs.size, 3))
-    s = fixed_spectrum(m)
+    s = fixed_spectrum(m, orders)
     f = m.freqs
     bw = m.bin_hz
     fmax = fmax_hz or 0.8 * f[-1]
@@ -117,9 +135,12 @@ def find_modes(m: SweepMap, fmin_hz: float = 40.0, fmax_hz: float | None = None)
         base[:, ax] = ndimage.median_filter(s[:, ax], size=win, mode="nearest")
         r = (s[:, ax] - base[:, ax])[band]
         sigma = 1.4826 * float(np.median(np.abs(r - np.median(r))))
-        pk, props = signal.find_peaks(s[:, ax], prominence=max(MIN_PROMINENCE_DB, SIGMA_FACTOR * sigma))
+        over = s[:, ax] - base[:, ax]
+        pk, props = signal.find_peaks(s[:, ax], prominence=MIN_PROMINENCE_DB)
         for p, prom in zip(pk, props["prominences"], strict=True):
-            if band[p]:
+            # prominence alone grows with the span searched (noise has 4-6 dB peaks); the height
+            # over the running median must stand clear of the spectrum's own spread as well
+            if band[p] and over[p] >= max(MIN_PROMINENCE_DB, SIGMA_FACTOR * sigma):
                 cands.append((float(prom), int(p), ax))
     cands.sort(reverse=True)
     modes: list[SweepMode] = []
@@ -133,11 +154,16 @@ def find_modes(m: SweepMap, fmin_hz: float = 40.0, fmax_hz: float | None = None)
             lin = 10 ** ((s[:, ax] - base[:, ax]) / 10.0)
             width = half_power_width_hz(lin, p, bw)
             z = width / (2 * fk)
-            zeta = float(z) if 0.002 <= z <= 0.2 else None
-        rise = np.maximum(10 ** ((s[p] - base[p]) / 10.0) - 1.0, 0.0)
-        part = rise / rise.sum() if rise.sum() > 0 else np.full(3, 1 / 3)
-        modes.append(SweepMode(fk, zeta, AXES[ax], prom, {AXES[i]: float(part[i]) for i in range(3)}))
+            # a width under 3 bins is the window's, not the mode's (Hann main lobe: 4 bins)
+            zeta = float(z) if width >= 3 * bw and 0.002 <= z <= 0.2 else None
+        # main axis and participation from the absolute response (the normalised spectra hide scale)
+        level = m.psd[:, max(p - 1, 0):p + 2].max(axis=1).mean(axis=0)  # (3,) mean over RPM bins
+        part = level / level.sum() if level.sum() > 0 else np.full(3, 1 / 3)
+        modes.append(SweepMode(fk, zeta, AXES[int(np.argmax(level))], prom, {AXES[i]: float(part[i]) for i in range(3)}))
     modes.sort(key=lambda md: md.freq_hz)
+    for a, b in zip(modes, modes[1:], strict=False):  # a merged pair's width is not one mode's damping
+        if b.freq_hz - a.freq_hz <= PAIR_FRACTION * a.freq_hz:
+            a.damping_ratio = b.damping_ratio = None
     return modes, s
 
 
@@ -161,7 +187,8 @@ def order_bands(m: SweepMap, modes: list[SweepMode], orders: list[tuple[float, s
                 continue
             db = np.full(y.shape, np.nan)
             db[ok] = 10 * np.log10(y[ok])
-            near = ok & (np.abs(f - md.freq_hz) <= max(3 * zeta, 0.05) * md.freq_hz)
+            near = ok & (np.abs(f - md.freq_hz) <= NEAR_FRACTION * md.freq_hz)
+            reach = ok & (np.abs(f - md.freq_hz) <= REACH_FRACTION * md.freq_hz)
             away = ok & ~(np.abs(f - md.freq_hz) <= max(6 * zeta, 0.10) * md.freq_hz)
             if not np.any(near):
                 continue
@@ -170,9 +197,9 @@ def order_bands(m: SweepMap, modes: list[SweepMode], orders: list[tuple[float, s
             trend = float(np.median(db[away])) if np.any(away) else float(np.nanmedian(db))
             # the observed band: contiguous bins around the peak within 3 dB of it
             j0 = j1 = i
-            while j0 > 0 and ok[j0 - 1] and db[j0 - 1] >= peak - 3.0:
+            while j0 > 0 and reach[j0 - 1] and db[j0 - 1] >= peak - 3.0:
                 j0 -= 1
-            while j1 < y.size - 1 and ok[j1 + 1] and db[j1 + 1] >= peak - 3.0:
+            while j1 < y.size - 1 and reach[j1 + 1] and db[j1 + 1] >= peak - 3.0:
                 j1 += 1
             half = m.bin_rpm / 2
             observed = peak - trend >= 3.0

@@ -5,7 +5,8 @@ It goes through exactly the code path of a real port (``serial_for_url`` with py
 
 - ``seed=N`` (default 0), ``fast=1`` (as fast as the reader reads; default real time),
 - ``stream=1`` (stream from boot without STREAM_CONTROL), ``script=0`` (no stand-alone throttle
-  script), ``solo=1`` (the script once per motor in turn, for imbalance runs), ``clock=US`` (device clock at boot), ``baud=N`` (emulate a UART at N baud),
+  script), ``solo=1`` (the script once per motor in turn, for imbalance runs),
+  ``clock=US`` (device clock at boot), ``baud=N`` (emulate a UART at N baud),
 - ``fault=NAME=VALUE`` (repeatable; ``simulators/faults.py``).
 
 Example: ``serial.serial_for_url("sim://quillback7?seed=1&fault=corrupt=0.01", timeout=0.05)``.
