@@ -1,7 +1,7 @@
 """Run spinrig's benchmarks: ``python3 benchmarks/run.py [NAME ...] [--quick]``.
 
 Each benchmark measures spinrig beside a baseline in the same run and prints ratios and medians.
-Names: decode, sim, engine, screen, tap. Not part of the test suite: no test ever
+Names: decode, sim, engine, screen, tap, analyze. Not part of the test suite: no test ever
 asserts a wall-clock time.
 """
 
@@ -20,6 +20,7 @@ BENCHES = {
     "engine": "benchmarks.bench_engine",
     "screen": "benchmarks.bench_screen",
     "tap": "benchmarks.bench_tap",
+    "analyze": "benchmarks.bench_analyze",
 }
 
 

@@ -270,7 +270,8 @@ def test_phase_costs_are_those_of_the_reference_filters():
 
 
 def test_close_modes_share_one_notch():
-    modes = [SweepMode(178.0, 0.03, "pitch", 20), SweepMode(192.0, 0.03, "pitch", 8), SweepMode(265.0, 0.025, "roll", 19)]
+    modes = [SweepMode(178.0, 0.03, "pitch", 20), SweepMode(192.0, 0.03, "pitch", 8),
+             SweepMode(265.0, 0.025, "roll", 19)]
     groups = notch_groups(modes)
     assert [len(g) for _, _, g in groups] == [2, 1]
     centre, width, _ = groups[0]

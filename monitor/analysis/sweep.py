@@ -19,7 +19,6 @@ from .record import Record
 from .sweep_map import SweepMap, build_map, frame_length, psd_frames, speeds_at
 from .sweep_modes import Band, SweepMode, find_modes, order_bands
 
-
 MASKED_ORDERS = [float(k) for k in range(1, 13)]  #: order lines left out of the fixed spectrum (1x..12x)
 
 

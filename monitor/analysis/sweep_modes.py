@@ -8,9 +8,10 @@ dwell tone sits at a frequency), so the order lines smear out and the fixed reso
 is a peak of that fixed-frequency spectrum with a prominence of at least 3 dB that also stands
 ``max(3 dB, 6 sigma)`` over the spectrum's 80 Hz running median (sigma the robust spread,
 1.4826 x MAD, of the spectrum about that median: white noise alone never passes), merged
-across axes within 3 %; its main axis is the one with the largest mean PSD there; its frequency is refined by parabolic interpolation of the dB peak
-(Gaussian interpolation; Gasior and Gonzalez, CERN AB-Note-2004-021), its damping ratio from the
-half-power width, zeta = width / (2 f) (half-power method; any vibration textbook, e.g. Rao,
+across axes within 3 %; its main axis is the one with the largest mean PSD there; its frequency
+is refined by parabolic interpolation of the dB peak (Gaussian interpolation; Gasior and
+Gonzalez, CERN AB-Note-2004-021), its damping ratio from the half-power width, zeta = width / (2
+f) (half-power method; any vibration textbook, e.g. Rao,
 Mechanical Vibrations, section 3.5), given only where the peak stands 6 dB or more over the
 running median, is at least 3 frequency bins wide and has no other mode within 12 % (else None).
 
@@ -159,7 +160,8 @@ def find_modes(m: SweepMap, orders: list[float] | None = None, fmin_hz: float = 
         # main axis and participation from the absolute response (the normalised spectra hide scale)
         level = m.psd[:, max(p - 1, 0):p + 2].max(axis=1).mean(axis=0)  # (3,) mean over RPM bins
         part = level / level.sum() if level.sum() > 0 else np.full(3, 1 / 3)
-        modes.append(SweepMode(fk, zeta, AXES[int(np.argmax(level))], prom, {AXES[i]: float(part[i]) for i in range(3)}))
+        share = {AXES[i]: float(part[i]) for i in range(3)}
+        modes.append(SweepMode(fk, zeta, AXES[int(np.argmax(level))], prom, share))
     modes.sort(key=lambda md: md.freq_hz)
     for a, b in zip(modes, modes[1:], strict=False):  # a merged pair's width is not one mode's damping
         if b.freq_hz - a.freq_hz <= PAIR_FRACTION * a.freq_hz:
