@@ -6,7 +6,6 @@ must at least match)."""
 
 from __future__ import annotations
 
-import resource
 import subprocess
 import sys
 import tempfile
@@ -54,10 +53,12 @@ def main(quick: bool = False) -> None:
         t_ref = time.perf_counter() - t0
         # the command's own memory: `spinrig analyze` in a child process, its peak resident size
         t0 = time.perf_counter()
-        subprocess.run([sys.executable, "-m", "monitor", "analyze", str(path), "--json"], check=True,
-                       capture_output=True)
+        child = ("import contextlib, io, resource, sys; from monitor.cli import main\n"
+                 "with contextlib.redirect_stdout(io.StringIO()): main(['analyze', sys.argv[1], '--json'])\n"
+                 "print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)")
+        out = subprocess.run([sys.executable, "-c", child, str(path)], check=True, capture_output=True, text=True)
         t_cmd = time.perf_counter() - t0
-        peak_mb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+        peak_mb = int(out.stdout.split()[-1]) / 1024  # that process's own peak (kB on Linux)
         size_mb = path.stat().st_size / 1e6
     total = t_read + t_analyse
     title = (f"analyze ({rec.duration_s / 60:.1f} min at {rec.fs_hz:g} Hz, {rec.motors} motors, "
