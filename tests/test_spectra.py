@@ -207,3 +207,41 @@ def test_a_frame_with_one_real_sample_removes_that_sample_as_its_mean():
     fb = RollingSTFT(cfg).push(np.where(valid[:, None], x, 0.0), valid)
     assert fb.filled[0] == pytest.approx(1 - 1 / n)
     np.testing.assert_allclose(fb.psd[0], 0.0, atol=1e-20)  # the mean over 1 sample, not half of it
+
+
+@pytest.mark.parametrize("name", ["flattop", "blackman", "hamming"])
+def test_the_ratio_table_is_the_windows_own_transform(name, monkeypatch):
+    # the table inverts |W(1 - d)| / |W(d)| (peaks module docstring); W evaluated here by the DFT
+    # sum W(v) = sum_n w[n] exp(-2 pi i v n / N) directly, not by the zero-padded FFT the table uses
+    import monitor.peaks as peaks
+
+    monkeypatch.setattr(peaks, "_TABLES", {})  # computed afresh, not from an earlier test's cache
+    ratios, deltas = peaks._ratio_table(name)
+    assert np.all(np.diff(ratios) >= 0) and deltas.min() == 0.0 and deltas.max() == 0.5
+    n = 256
+    w = signal.get_window(name, n, fftbins=True)
+
+    def mag(v):
+        return abs(np.sum(w * np.exp(-2j * np.pi * v * np.arange(n) / n)))
+
+    for d in (0.0, 0.125, 0.25, 0.375, 0.5):
+        i = int(np.flatnonzero(np.isclose(deltas, d))[0])
+        assert ratios[i] == pytest.approx(mag(1 - d) / mag(d), rel=1e-9)
+
+
+@pytest.mark.parametrize("name", ["flattop", "blackman"])
+@pytest.mark.parametrize("offset", [0.05, 0.21, 0.44, 0.63, 0.88])
+def test_a_clean_tone_is_placed_exactly_by_the_ratio_table(name, offset, monkeypatch):
+    import monitor.peaks as peaks
+
+    monkeypatch.setattr(peaks, "_TABLES", {})
+    n = 2048
+    k0 = 300 + offset
+    w = signal.get_window(name, n, fftbins=True)
+    x = np.cos(2 * np.pi * k0 * np.arange(n) / n) * w
+    amp = np.abs(np.fft.rfft(x))
+    k = int(np.argmax(amp))
+    # the table steps 1/256 bin: linear interpolation between its points is good to 1e-3 bin
+    assert k + float(interpolate_bin(amp, k, name)) == pytest.approx(k0, abs=2e-3)
+    (f, a, p), *_ = find_peaks(amp, 1.0, name, min_prominence_db=20)
+    assert f == pytest.approx(k0, abs=2e-3) and a == amp[k] and p > 20

@@ -90,7 +90,7 @@ def analyse(rec: Record, blades: int = 2, estimate_rpm: bool | None = None) -> S
         Imbalance("not separable", [], "no motor telemetry: imbalance needs each motor's own speed")
     if m.rpm.size == 0:
         notes.append("no frame with every motor turning: nothing swept")
-    fr = np.where(np.all(np.isfinite(speeds), axis=1), np.nanmean(speeds, axis=1), np.nan) if speeds.size else \
-        np.zeros(0)
+    known = np.all(np.isfinite(speeds), axis=1) if speeds.size else np.zeros(0, bool)
+    fr = np.where(known, np.where(known[:, None], speeds, 0.0).mean(axis=1), np.nan) if speeds.size else np.zeros(0)
     return SweepAnalysis(rec, blades, estimated, m, fixed, modes, bands, imb, guidance(modes, bands, rec.fs_hz),
                          tc, fr, notes)

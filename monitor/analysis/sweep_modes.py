@@ -1,5 +1,8 @@
 """Frame modes a sweep excites, and the RPM bands where each motor order excites them.
 
+(After the peak search below, neighbouring peaks are fitted together by :func:`refine`, which
+replaces the interpolated frequency and half-power damping where the fit holds.)
+
 Modes: a resonance stays at one frequency while the motor orders move with speed. In every RPM
 bin of the map the spectrum is normalised by its median level (dB), and the bins are combined
 with a 25 % trimmed mean (Tukey's trimmed mean; it ignores the few bins where an order line or a
@@ -29,6 +32,7 @@ import numpy as np
 from scipy import ndimage, signal
 
 from ..stray import half_power_width_hz
+from .peak_fit import fit_peaks
 from .sweep_map import SweepMap
 
 AXES = ("roll", "pitch", "yaw")
@@ -39,6 +43,11 @@ MERGE_FRACTION = 0.03
 DAMPING_MIN_DB = 6.0
 NEAR_FRACTION = 0.03  #: an order's peak counts for a mode within 3 % of it (a sweep shifts the peak a little)
 REACH_FRACTION = 0.05  #: the observed band stops 5 % from the mode (a neighbour's crossing is not this mode's)
+GROUP_FRACTION = 0.15  #: modes this close are fitted together
+FIT_MARGIN = 0.10
+FIT_SHIFT = 0.02  #: a fitted frequency stays within 2 % of the interpolated peak (about a bin)
+HIDDEN_COST_RATIO = 0.45  #: one more mode must cut the fit's squared residuals to 45 % or less
+HIDDEN_MIN_DB = 15.0  #: and stand this far over the floor  #: the fit spans the group and 10 % either side
 PAIR_FRACTION = 0.12  #: modes closer than this overlap: no damping from their half-power width
 DEFAULT_ZETA = 0.03  #: for a predicted band when a mode's damping could not be measured (common practice)
 
@@ -163,10 +172,43 @@ def find_modes(m: SweepMap, orders: list[float] | None = None, fmin_hz: float = 
         share = {AXES[i]: float(part[i]) for i in range(3)}
         modes.append(SweepMode(fk, zeta, AXES[int(np.argmax(level))], prom, share))
     modes.sort(key=lambda md: md.freq_hz)
-    for a, b in zip(modes, modes[1:], strict=False):  # a merged pair's width is not one mode's damping
-        if b.freq_hz - a.freq_hz <= PAIR_FRACTION * a.freq_hz:
-            a.damping_ratio = b.damping_ratio = None
+    refine(modes, f, s, band)
+    modes.sort(key=lambda md: md.freq_hz)
     return modes, s
+
+
+def refine(modes: list[SweepMode], f: np.ndarray, s: np.ndarray, band: np.ndarray) -> None:
+    """Fit each group of neighbouring modes (within 15 % of each other) together on the fixed
+    spectrum, all axes at once (:func:`peak_fit.fit_peaks`): overlapping peaks no longer pull each
+    other's frequency, and each gets a damping ratio of its own. A fit that fails, or a damping
+    ratio at the search's bounds, keeps the interpolated frequency and withholds the damping of a
+    mode with a neighbour within 12 % (a merged pair's width is not one mode's damping)."""
+    groups: list[list[SweepMode]] = []
+    for md in modes:
+        if groups and md.freq_hz <= groups[-1][-1].freq_hz * (1 + GROUP_FRACTION):
+            groups[-1].append(md)
+        else:
+            groups.append([md])
+    power = 10 ** (s / 10.0)
+    for g in groups:
+        lo, hi = g[0].freq_hz * (1 - FIT_MARGIN), g[-1].freq_hz * (1 + FIT_MARGIN)
+        sel = band & (f >= lo) & (f <= hi)
+        fit = None
+        if np.count_nonzero(sel) >= 3 * len(g) + 3:
+            start = [(md.freq_hz, md.damping_ratio or DEFAULT_ZETA) for md in g]
+            fit = fit_peaks(f[sel], power[sel], start, max_shift=FIT_SHIFT)
+            if fit is not None and any(abs(fn - f0) >= 0.95 * FIT_SHIFT * f0 for (fn, _, _), (f0, _) in zip(
+                    fit, start, strict=True)):
+                fit = None  # a frequency driven to its bound: the model does not describe this hump
+        for i, md in enumerate(g):
+            if fit is not None:
+                fn, zeta, _ = fit[i]
+                md.freq_hz = fn
+                md.damping_ratio = zeta if 0.0025 < zeta < 0.19 else None
+            elif len(g) > 1:
+                near = [o for o in g if o is not md and abs(o.freq_hz - md.freq_hz) <= PAIR_FRACTION * md.freq_hz]
+                if near:
+                    md.damping_ratio = None
 
 
 def order_bands(m: SweepMap, modes: list[SweepMode], orders: list[tuple[float, str]]) -> list[Band]:
