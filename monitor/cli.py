@@ -268,7 +268,7 @@ def _add_tap(sub) -> None:
         epilog="examples:\n  spinrig tap /dev/ttyACM0 --profile frame.toml   (guided: 5 taps)\n"
                "  spinrig tap 'sim://quillback7?script=0' --taps 3\n"
                "  spinrig tap taps.spinrec\n  spinrig tap taps.spinrec --profile frame.toml\n"
-               "  spinrig tap taps.csv --json",
+               "  spinrig tap taps.csv --json\n  spinrig tap taps.spinrec --report tap-report",
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("source", metavar="SOURCE",
@@ -277,6 +277,8 @@ def _add_tap(sub) -> None:
     p.add_argument("--json", action="store_true", help="print one JSON object: taps and modes")
     p.add_argument("--profile", metavar="FILE", help="write the modes to this profile (asks before replacing)")
     p.add_argument("--yes", action="store_true", help="replace an existing profile's modes without asking")
+    p.add_argument("--report", metavar="DIR", help="write report.html (each decay with its fitted modes), the "
+                   "plots as PNG and taps.json into DIR")
     p.add_argument("--taps", type=bounded(int, 1, 1000, what="taps"), metavar="N",
                    help="live: how many taps to ask for (default 5); files: use the first N taps only")
     p.set_defaults(func=lambda a: __import__("monitor.tap_command", fromlist=["run"]).run(a))

@@ -203,6 +203,15 @@ def run(args) -> int:
                       f"{100 * m.damping_sd:5.2f}  {m.taps:4d}  {m.axis:5s}  {share:20s}  {check}")
         else:
             print("no mode found in two or more taps")
+    if getattr(args, "report", None):
+        from .analysis.tap_report import write_tap_report
+
+        try:
+            where = write_tap_report(src, taps, modes, args.report)
+            print(f"report: {where}", file=sys.stderr if args.json else sys.stdout)
+        except OSError as exc:
+            print(f"spinrig: {args.report}: {exc.strerror or exc}; report not complete", file=sys.stderr)
+            return 1
     if args.profile and modes:
         try:
             said = _write_profile(Path(args.profile), modes, src, args.yes)

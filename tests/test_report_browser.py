@@ -58,6 +58,26 @@ def test_every_image_loads_and_nothing_overflows_1280_pixels(report):
     assert result["over"] == 0 and result["scroll"] <= 1280
 
 
+def test_the_tap_report_loads_every_image_within_1280_pixels(tmp_path):
+    from tests.sim_helpers import tap_capture
+
+    tap_capture(tmp_path / "taps.spinrec", "brisling5", taps=2)
+    from monitor.analysis.tap_report import write_tap_report
+    from monitor.analysis.taps import analyse_taps, combine
+    from monitor.tap_command import _record
+
+    x, fs, fsd = _record(str(tmp_path / "taps.spinrec"))
+    taps = analyse_taps(x, fs, fsd)
+    page = write_tap_report("taps.spinrec", taps, combine(taps), tmp_path / "out")
+    check = page.with_name("check.html")
+    check.write_text(page.read_text(encoding="utf-8").replace("</body>", CHECK + "</body>"), encoding="utf-8")
+    p = chromium("--dump-dom", check.as_uri(), cwd=page.parent)
+    found = re.search(r"data-check=\"([^\"]+)\"", p.stdout)
+    assert found, p.stderr[-2000:]
+    result = json.loads(found.group(1).replace("&quot;", '"'))
+    assert result["images"] == 2 and result["bad"] == 0 and result["over"] == 0 and result["scroll"] <= 1280
+
+
 def test_the_page_renders_to_a_screenshot(report):
     shot = report.with_name("report.png")
     p = chromium(f"--screenshot={shot}", report.as_uri(), cwd=report.parent)

@@ -163,3 +163,29 @@ def test_a_live_tap_session_on_a_simulated_frame():
     # is tested on recorded taps above, here every mode is a true one within 1 %)
     assert all(min(abs(m["freq_hz"] / f - 1) for f in sc_modes) < 0.01 for m in out["modes"]), out["modes"]
     assert len(out["modes"]) >= 5, out["modes"]
+
+
+def test_the_fitted_curve_of_exact_modes_is_the_decay_itself():
+    # the identified poles with least-squares amplitudes rebuild an exact sum of damped sinusoids
+    from monitor.analysis.pencil import Pole
+    from monitor.analysis.tap_report import fitted_curve
+
+    modes = [(150.0, 0.03, 5.0), (260.0, 0.02, 2.0), (410.0, 0.05, 1.0)]
+    x, _ = decay(modes, seconds=0.3)
+    poles = [Pole(f, z) for f, z, _ in modes]
+    np.testing.assert_allclose(fitted_curve(x, 2000.0, poles), x, atol=1e-9 * np.abs(x).max())
+    assert np.all(fitted_curve(x, 2000.0, []) == 0)
+
+
+def test_tap_report_has_each_decay_and_the_modes(tmp_path):
+    path = tmp_path / "taps.spinrec"
+    tap_capture(path, "pipit3", taps=3)
+    p = subprocess.run([sys.executable, "-m", "monitor", "tap", str(path), "--report", str(tmp_path / "rep")],
+                       capture_output=True, text=True, cwd=ROOT)
+    assert p.returncode == 0, p.stderr
+    names = sorted(q.name for q in (tmp_path / "rep").iterdir())
+    assert names == ["report.html", "tap1.png", "tap2.png", "tap3.png", "taps.json"]
+    page = (tmp_path / "rep" / "report.html").read_text(encoding="utf-8")
+    assert page.count("data:image/png;base64,") == 3 and "<script" not in page
+    d = json.loads((tmp_path / "rep" / "taps.json").read_text())
+    assert len(d["taps"]) == 3 and d["modes"] and f"report: {tmp_path / 'rep' / 'report.html'}" in p.stdout

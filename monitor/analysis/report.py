@@ -151,10 +151,7 @@ def page(a, images: dict[str, bytes], extra_html: str = "") -> str:
                 for r in imb["motors"]]
 
     def img(name, alt):
-        if name not in images:
-            return ""
-        data = base64.b64encode(images[name]).decode("ascii")
-        return f'<img src="data:image/png;base64,{data}" alt="{html.escape(alt)}" width="1100">'
+        return embed(images, name, alt)
 
     advice = "".join(f"<li>{html.escape(x)}</li>" for x in d["guidance"])
     notes = "".join(f"<li>{html.escape(x)}</li>" for x in d["notes"])
@@ -182,15 +179,11 @@ the prop arc, a current-limited supply and a physical kill switch within reach.<
 """
 
 
-def write_report(a, folder: str | Path, extra_html: str = "") -> Path:
-    """Write ``report.html``, the PNGs and ``analysis.json`` into ``folder`` (created); each file
-    is written beside its target and renamed over it, so a full disk leaves no half file."""
+def write_files(folder: str | Path, files: dict[str, bytes]) -> None:
+    """Write each file into ``folder`` (created) beside its target and rename it over the target,
+    so a full disk leaves no half file."""
     out = Path(folder)
     out.mkdir(parents=True, exist_ok=True)
-    images = _plots(a)
-    files = dict(images)
-    files["analysis.json"] = (json.dumps(a.as_dict(), indent=2) + "\n").encode()
-    files["report.html"] = page(a, images, extra_html).encode("utf-8")
     for name, data in files.items():
         tmp = out / (name + ".part")
         try:
@@ -202,4 +195,21 @@ def write_report(a, folder: str | Path, extra_html: str = "") -> Path:
         except BaseException:
             tmp.unlink(missing_ok=True)
             raise
-    return out / "report.html"
+
+
+def embed(images: dict[str, bytes], name: str, alt: str) -> str:
+    """An <img> with the PNG inline (base64), or nothing when there is no such plot."""
+    if name not in images:
+        return ""
+    data = base64.b64encode(images[name]).decode("ascii")
+    return f'<img src="data:image/png;base64,{data}" alt="{html.escape(alt)}" width="1100">'
+
+
+def write_report(a, folder: str | Path, extra_html: str = "") -> Path:
+    """Write ``report.html``, the PNGs and ``analysis.json`` into ``folder``."""
+    images = _plots(a)
+    files = dict(images)
+    files["analysis.json"] = (json.dumps(a.as_dict(), indent=2) + "\n").encode()
+    files["report.html"] = page(a, images, extra_html).encode("utf-8")
+    write_files(folder, files)
+    return Path(folder) / "report.html"
