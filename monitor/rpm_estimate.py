@@ -25,7 +25,10 @@ class RpmEstimator:
         self.bin_hz = float(freqs[1] - freqs[0])
         self.mult = order_multipliers(blades)
         nyq = float(freqs[-1])
-        f_hi = min(rpm_max / 60.0, nyq / self.mult.max())
+        # a candidate needs its 1x and 2x below Nyquist; its higher orders may lie above (they
+        # score nothing there): limiting candidates by the highest order would cut off the true
+        # speed of a many-bladed prop at a low gyro rate and leave only its subharmonics
+        f_hi = min(rpm_max / 60.0, nyq / 2.0)
         step = self.bin_hz / 4
         self.f0 = np.arange(rpm_min / 60.0, max(f_hi, rpm_min / 60.0 + step), step)
         self.window = window

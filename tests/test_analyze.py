@@ -383,3 +383,19 @@ def test_report_folder_has_the_page_the_plots_and_the_json(tmp_path, sweeps):
     assert json.loads((tmp_path / "rep" / "analysis.json").read_text())["modes"] == a.as_dict()["modes"]
     for png in ("campbell.png", "orders.png", "spectra.png"):
         assert (tmp_path / "rep" / png).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+@pytest.mark.parametrize("name", ["brisling5", "pipit3", "quillback7"])
+def test_estimated_speeds_are_within_one_percent_of_telemetry(tmp_path, name):
+    # the same simulated run (same seed) with and without motor telemetry, frame by frame
+    sc = sweep_capture(tmp_path / "t.spinrec", name, seed=1)
+    sweep_capture(tmp_path / "g.spinrec", name, seed=1, telemetry=False)
+    told = analyse(load_record(tmp_path / "t.spinrec"), sc.motors.blades)
+    guess = analyse(load_record(tmp_path / "g.spinrec"), sc.motors.blades)
+    assert guess.estimated and not told.estimated
+    n = min(told.frame_rpm.size, guess.frame_rpm.size)
+    t, e = told.frame_rpm[:n], guess.frame_rpm[:n]
+    spinning = np.isfinite(t) & (t > 1500)
+    both = spinning & np.isfinite(e)
+    assert np.count_nonzero(both) >= 0.9 * np.count_nonzero(spinning)
+    assert np.median(np.abs(e[both] - t[both]) / t[both]) <= 0.01  # measured 0.07 to 0.10 %
