@@ -61,6 +61,7 @@ def run(args) -> int:
             print(f"spinrig: {exc}", file=sys.stderr)
             return 2
         blades = blades or prof.blades
+    defaulted = not blades
     blades = blades or 2
     import os
 
@@ -78,6 +79,8 @@ def run(args) -> int:
         if prog:
             prog.update(task, advance=1, description="spectra, modes, bands")
         a = analyse(rec, blades, estimate_rpm=True if args.estimate_rpm else None)
+        if defaulted:
+            a.notes.append("props taken as 2-bladed (no --blades or --profile): blade-pass orders may be wrong")
         if prog:
             prog.update(task, advance=1, description="report")
         where = None

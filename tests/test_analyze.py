@@ -399,3 +399,26 @@ def test_estimated_speeds_are_within_one_percent_of_telemetry(tmp_path, name):
     both = spinning & np.isfinite(e)
     assert np.count_nonzero(both) >= 0.9 * np.count_nonzero(spinning)
     assert np.median(np.abs(e[both] - t[both]) / t[both]) <= 0.01  # measured 0.07 to 0.10 %
+
+
+def test_a_cut_capture_is_analysed_up_to_the_cut_and_says_so(tmp_path):
+    path = tmp_path / "b.spinrec"
+    sweep_capture(path, "brisling5", seed=1)
+    data = path.read_bytes()
+    cut = tmp_path / "cut.spinrec"
+    cut.write_bytes(data[: int(len(data) * 0.6) + 7])  # mid-chunk, as a pulled cable leaves it
+    p = spinrig("analyze", str(cut), "--json", "--blades", "3")
+    assert p.returncode == 0, p.stderr
+    d = json.loads(p.stdout)
+    assert d["notes"] and any("byte" in n or "cut" in n or "end" in n for n in d["notes"])
+    assert 0.5 * 64 < d["duration_s"] < 0.7 * 64
+
+
+def test_the_csv_export_of_a_capture_gives_the_same_modes(tmp_path):
+    path = tmp_path / "q.spinrec"
+    sweep_capture(path, "quillback7", seed=1)
+    assert spinrig("export", str(path), "--csv").returncode == 0
+    a = [m["freq_hz"] for m in json.loads(spinrig("analyze", str(path), "--json", "--blades", "3").stdout)["modes"]]
+    b = [m["freq_hz"] for m in json.loads(spinrig("analyze", str(path.with_suffix(".csv")), "--json",
+                                                   "--blades", "3").stdout)["modes"]]
+    assert len(a) == len(b) and np.allclose(a, b, rtol=2e-3)
