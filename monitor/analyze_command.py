@@ -78,7 +78,7 @@ def run(args) -> int:
             return 2
         if prog:
             prog.update(task, advance=1, description="spectra, modes, bands")
-        a = analyse(rec, blades, estimate_rpm=True if args.estimate_rpm else None)
+        a = analyse(rec, blades, estimate_rpm=True if args.estimate_rpm else None, notches=args.notch or [])
         if defaulted:
             a.notes.append("props taken as 2-bladed (no --blades or --profile): blade-pass orders may be wrong")
         if prog:

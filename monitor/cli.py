@@ -284,6 +284,17 @@ def _add_tap(sub) -> None:
     p.set_defaults(func=lambda a: __import__("monitor.tap_command", fromlist=["run"]).run(a))
 
 
+def _notch(text: str) -> tuple[float, float]:
+    """``HZ:WIDTH`` as (centre, width), both Hz, 0 < width < 2 centre."""
+    try:
+        c, w = (float(v) for v in text.split(":"))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not HZ:WIDTH (for example 185:30)") from None
+    if not (0 < c < 1e5 and 0 < w < 2 * c):
+        raise argparse.ArgumentTypeError(f"{text}: need 0 < centre and 0 < width < 2 x centre (Hz)")
+    return c, w
+
+
 def _add_analyze(sub) -> None:
     p = sub.add_parser(
         "analyze",
@@ -295,7 +306,8 @@ def _add_analyze(sub) -> None:
                     "estimated from the spectrum and flagged.",
         epilog="examples:\n  spinrig analyze sweep.spinrec\n  spinrig analyze sweep.spinrec --json\n"
                "  spinrig analyze sweep.csv --blades 3 --report sweep-report\n"
-               "  spinrig analyze one-at-a-time.spinrec --profile frame.toml",
+               "  spinrig analyze one-at-a-time.spinrec --profile frame.toml\n"
+               "  spinrig analyze sweep.spinrec --blades 3 --notch 185:30",
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("file", metavar="FILE", help="a capture (.spinrec) or CSV of a sweep")
@@ -305,6 +317,9 @@ def _add_analyze(sub) -> None:
     p.add_argument("--blades", type=bounded(int, 1, 8, what="blades"), help="prop blades, 1 to 8 (default: the "
                    "profile's, else 2)")
     p.add_argument("--profile", metavar="FILE", help="frame profile (TOML): its blade count")
+    p.add_argument("--notch", type=_notch, action="append", metavar="HZ:WIDTH",
+                   help="a notch to judge (centre and -3 dB width, Hz): which modes it covers and its phase cost; "
+                        "repeatable")
     p.add_argument("--estimate-rpm", action="store_true",
                    help="estimate the speed from the spectrum even when the file has motor telemetry")
     p.set_defaults(func=lambda a: __import__("monitor.analyze_command", fromlist=["run"]).run(a))

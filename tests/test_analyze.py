@@ -422,3 +422,20 @@ def test_the_csv_export_of_a_capture_gives_the_same_modes(tmp_path):
     b = [m["freq_hz"] for m in json.loads(spinrig("analyze", str(path.with_suffix(".csv")), "--json",
                                                    "--blades", "3").stdout)["modes"]]
     assert len(a) == len(b) and np.allclose(a, b, rtol=2e-3)
+
+
+def test_a_given_notch_says_what_it_covers_and_leaves():
+    from monitor.analysis.guidance import notch_check, notch_covers
+
+    a, b = SweepMode(180.0, 0.03, "pitch", 20), SweepMode(265.0, 0.025, "roll", 19)
+    assert notch_covers(180.0, 2 * 0.03 * 180.0, a) and not notch_covers(180.0, 2 * 0.029 * 180.0, a)
+    said = notch_check(180.0, 30.0, [a, b], 4000.0)
+    assert "covers the mode(s) at 180 Hz" in said and "leaves the strong mode(s) at 265 Hz" in said
+    bq, aq = signal.iirnotch(180.0, 6.0, fs=4000.0)
+    assert f"{phase_lag_deg(bq, aq, 4000.0):.1f} degrees" in said
+
+
+@pytest.mark.parametrize("bad", ["185", "185:0", "185:400", "a:b", "-3:1"])
+def test_a_bad_notch_is_a_usage_error(bad, tmp_path):
+    p = spinrig("analyze", str(tmp_path / "x.csv"), "--notch", bad)
+    assert p.returncode == 2 and "--notch" in p.stderr

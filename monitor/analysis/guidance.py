@@ -42,13 +42,36 @@ def notch_groups(modes: list, fraction: float = GROUP_FRACTION) -> list[tuple[fl
     return out
 
 
-def guidance(modes: list, bands: list, fs_hz: float) -> list[str]:
+def notch_covers(centre_hz: float, width_hz: float, mode) -> bool:
+    """A notch covers a mode when the mode's half-power band f (1 -+ zeta) lies inside the notch's
+    -3 dB band centre -+ width / 2 (zeta 3 % where the damping is unknown; common practice)."""
+    z = mode.damping_ratio or 0.03
+    return centre_hz - width_hz / 2 <= mode.freq_hz * (1 - z) and mode.freq_hz * (1 + z) <= centre_hz + width_hz / 2
+
+
+def notch_check(centre_hz: float, width_hz: float, modes: list, fs_hz: float) -> str:
+    """What a given notch (centre, -3 dB width, Hz) addresses among ``modes`` and what it costs."""
+    b, a = signal.iirnotch(centre_hz, centre_hz / width_hz, fs=fs_hz)
+    cost = phase_lag_deg(b, a, fs_hz)
+    strong = [m for m in modes if m.prominence_db >= STRONG_DB]
+    hit = [m for m in modes if notch_covers(centre_hz, width_hz, m)]
+    missed = [m for m in strong if m not in hit]
+    said = f"A notch at {centre_hz:g} Hz, {width_hz:g} Hz wide, "
+    covered = ", ".join(f"{m.freq_hz:.0f} Hz" for m in hit)
+    said += f"covers the mode(s) at {covered}" if hit else "covers no mode found"
+    if missed:
+        said += "; it leaves the strong mode(s) at " + ", ".join(f"{m.freq_hz:.0f} Hz" for m in missed)
+    return said + f"; it costs about {cost:.1f} degrees of phase at {REFERENCE_HZ:.0f} Hz."
+
+
+def guidance(modes: list, bands: list, fs_hz: float, notches: list[tuple[float, float]] = ()) -> list[str]:
     """Sentences a person can act on: the lowest strong mode, the notches that address the
-    strong fixed modes and their phase cost, the RPM bands to keep steady throttle out of."""
-    out: list[str] = []
+    strong fixed modes and their phase cost, the RPM bands to keep steady throttle out of, and
+    for each given notch (centre, width Hz) what it addresses."""
+    out: list[str] = [notch_check(c, w, modes, fs_hz) for c, w in notches]
     strong = [m for m in modes if m.prominence_db >= STRONG_DB]
     if not modes:
-        return ["No frame mode stood out in this sweep: no filter is needed for frame resonances."]
+        return out + ["No frame mode stood out in this sweep: no filter is needed for frame resonances."]
     if strong:
         low = min(strong, key=lambda m: m.freq_hz)
         cut = 0.8 * low.freq_hz

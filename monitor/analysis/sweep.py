@@ -65,9 +65,11 @@ def orders_followed(blades: int) -> list[tuple[float, str]]:
     return [(k, order_label(k, blades)) for k in ks]
 
 
-def analyse(rec: Record, blades: int = 2, estimate_rpm: bool | None = None) -> SweepAnalysis:
+def analyse(rec: Record, blades: int = 2, estimate_rpm: bool | None = None,
+            notches: list[tuple[float, float]] = ()) -> SweepAnalysis:
     """The analysis of ``rec`` with props of ``blades`` blades. ``estimate_rpm`` forces (True) or
-    forbids (False) the spectral speed estimate; by default it is used when there is no telemetry."""
+    forbids (False) the spectral speed estimate; by default it is used when there is no telemetry.
+    ``notches`` [(centre Hz, width Hz)]: filters to judge against the modes found."""
     n = frame_length(rec.fs_hz)
     starts, frames = psd_frames(rec.gyro_dps, rec.fs_hz, n, n // 2)
     freqs = np.fft.rfftfreq(n, 1.0 / rec.fs_hz)
@@ -91,6 +93,7 @@ def analyse(rec: Record, blades: int = 2, estimate_rpm: bool | None = None) -> S
     if m.rpm.size == 0:
         notes.append("no frame with every motor turning: nothing swept")
     known = np.all(np.isfinite(speeds), axis=1) if speeds.size else np.zeros(0, bool)
-    fr = np.where(known, np.where(known[:, None], speeds, 0.0).mean(axis=1), np.nan) if speeds.size else np.zeros(0)
-    return SweepAnalysis(rec, blades, estimated, m, fixed, modes, bands, imb, guidance(modes, bands, rec.fs_hz),
+    fr = np.where(known, np.where(known[:, None], speeds, 0.0).mean(axis=1), np.nan) if speeds.size else \
+        np.zeros(0)
+    return SweepAnalysis(rec, blades, estimated, m, fixed, modes, bands, imb, guidance(modes, bands, rec.fs_hz, notches),
                          tc, fr, notes)
