@@ -95,5 +95,5 @@ def analyse(rec: Record, blades: int = 2, estimate_rpm: bool | None = None,
     known = np.all(np.isfinite(speeds), axis=1) if speeds.size else np.zeros(0, bool)
     fr = np.where(known, np.where(known[:, None], speeds, 0.0).mean(axis=1), np.nan) if speeds.size else \
         np.zeros(0)
-    return SweepAnalysis(rec, blades, estimated, m, fixed, modes, bands, imb, guidance(modes, bands, rec.fs_hz, notches),
-                         tc, fr, notes)
+    advice = guidance(modes, bands, rec.fs_hz, notches)
+    return SweepAnalysis(rec, blades, estimated, m, fixed, modes, bands, imb, advice, tc, fr, notes)
