@@ -245,3 +245,39 @@ def test_a_clean_tone_is_placed_exactly_by_the_ratio_table(name, offset, monkeyp
     assert k + float(interpolate_bin(amp, k, name)) == pytest.approx(k0, abs=2e-3)
     (f, a, p), *_ = find_peaks(amp, 1.0, name, min_prominence_db=20)
     assert f == pytest.approx(k0, abs=2e-3) and a == amp[k] and p > 20
+
+
+def test_peak_interpolation_at_the_edges_and_on_flat_or_silent_spectra():
+    # Grandke's Hann ratio delta = (2a - 1) / (a + 1), a = larger neighbour / peak, clipped to
+    # [0, 1] (the tone lies between k and its larger neighbour); bins 0 and n - 1 have one
+    # neighbour only and are not moved. Any numpy warning fails the test.
+    import warnings
+
+    mag = np.array([4.0, 3.0, 0.5, 1.0, 2.0, 1.0, 0.0, 2.0, 1.0, 5.0])
+    n = mag.size
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        got = interpolate_bin(mag, np.arange(n))
+        silent = interpolate_bin(np.zeros(8), np.arange(8))
+        flat = interpolate_bin(np.ones(8), np.arange(8), "flattop")
+    a = {1: 4 / 3, 2: 6.0, 3: 2.0, 4: 0.5, 5: 2.0, 7: 0.5, 8: 5.0}  # larger neighbour / bin
+    sign = {1: -1, 2: -1, 3: 1, 4: 1, 5: -1, 7: 1, 8: 1}  # ties go right
+    want = np.zeros(n)
+    for k, al in a.items():
+        want[k] = sign[k] * np.clip((2 * al - 1) / (al + 1), 0.0, 1.0)
+    want[6] = 0.0  # a silent bin: no ratio, no move
+    assert got[0] == 0.0 and got[n - 1] == 0.0
+    np.testing.assert_allclose(got, want, rtol=0, atol=1e-12)
+    assert np.all(silent == 0.0) and flat[0] == 0.0 and flat[-1] == 0.0
+    assert np.all(np.abs(flat[1:-1]) <= 0.5 + 1e-9)
+
+
+def test_hann_uses_the_exact_ratio_not_the_table():
+    # a clean Hann tone is placed to rounding by Grandke's closed form (the table would be good
+    # only to its 1/256-bin step)
+    n = 1024
+    for k0 in (100.0 + d for d in (0.011, 0.137, 0.293, 0.377, 0.449)):
+        w = signal.get_window("hann", n, fftbins=True)
+        amp = np.abs(np.fft.rfft(np.cos(2 * np.pi * k0 * np.arange(n) / n) * w))
+        k = int(np.argmax(amp))
+        assert k + float(interpolate_bin(amp, k, "hann")) == pytest.approx(k0, abs=2e-4)
