@@ -243,3 +243,26 @@ def test_stray_search_over_many_frames_equals_one_at_a_time():
     many = StrayPeakFinder(profile, freqs)
     b = [p.as_dict() for k in range(0, 40, 7) for p in many.update_many(t[k : k + 7], psd[k : k + 7], rpm[k : k + 7])]
     assert a and a == b and abs(a[0]["freq_hz"] - 50.8) < 2.0
+
+
+def test_speed_estimate_reads_orders_one_bin_either_side_and_needs_two():
+    # harmonic sum (Noll 1969): each order counts the best bin within +-1 of k x f0; one order
+    # alone is no motor (ORDER_EVIDENCE_DB at two orders at least)
+    from monitor.rpm_estimate import RpmEstimator
+
+    freqs = np.arange(0, 2001.0, 2.0)
+    est = RpmEstimator(freqs, blades=3)
+
+    def spectrum(lines):
+        p = np.ones(freqs.size)
+        for f_hz, db in lines:
+            p[int(round(f_hz / 2.0))] = 10 ** (db / 10)
+        return p
+
+    # 1x one bin low, 2x one bin high, both 20 dB up: f0 = 100 Hz, 6000 RPM
+    got = est.estimate(spectrum([(98.0, 20.0), (202.0, 20.0)]))
+    assert got == pytest.approx(6000.0, rel=0.03)
+    assert np.isnan(est.estimate(spectrum([(100.0, 20.0)])))  # one line: not a motor
+    assert np.isnan(est.estimate(np.ones(freqs.size)))  # nothing: no estimate
+    # two orders just under the evidence needed: no estimate
+    assert np.isnan(est.estimate(spectrum([(100.0, 5.0), (200.0, 5.0)])))
