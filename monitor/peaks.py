@@ -1,4 +1,4 @@
-"""Spectral peaks with interpolated frequency and amplitude.
+"""Spectral peak interpolation: the fractional bin of a tone from its largest bin and neighbours.
 
 For a Hann window the frequency offset of a tone from its largest bin k follows exactly from the
 ratio of the two largest bins, a = |X[k+1]| / |X[k]|: delta = (2a - 1) / (a + 1) bins (T. Grandke,
@@ -59,22 +59,3 @@ def _ratio_table(window: str) -> tuple[np.ndarray, np.ndarray]:
         hit = (ratio[order], d[order])
         _TABLES[window] = hit
     return hit
-
-
-def find_peaks(
-    mag: np.ndarray,
-    bin_hz: float,
-    window: str = "hann",
-    min_prominence_db: float = 6.0,
-    max_peaks: int = 20,
-    fmin_hz: float = 0.0,
-) -> list[tuple[float, float, float]]:
-    """Peaks of one amplitude spectrum: [(freq Hz, amplitude, prominence dB)], strongest first."""
-    db = 20 * np.log10(np.maximum(mag, 1e-12))
-    idx, props = signal.find_peaks(db, prominence=min_prominence_db)
-    keep = idx * bin_hz >= fmin_hz
-    idx, prom = idx[keep], props["prominences"][keep]
-    order = np.argsort(mag[idx])[::-1][:max_peaks]
-    idx, prom = idx[order], prom[order]
-    delta = interpolate_bin(mag, idx, window)
-    return [(float((i + d) * bin_hz), float(mag[i]), float(p)) for i, d, p in zip(idx, delta, prom, strict=True)]
