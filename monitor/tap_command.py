@@ -16,21 +16,12 @@ from .profile import Mode, Profile, ProfileError, load_profile
 
 def _record(path: str) -> tuple[np.ndarray, float, float | None]:
     """(gyro (n, 3) deg/s, sample rate Hz, full scale deg/s or None) of a capture or CSV."""
-    if path.lower().endswith(".csv"):
-        from .csv_input import read_csv, sample_rate
+    from .analysis.record import load_record
 
-        t, gyro, _ = read_csv(path)
-        fs, _ = sample_rate(t, path)
-        return gyro, fs, None
-    from .export import decode_capture
-
-    d = decode_capture(path)
-    info = d["device"]
-    if info is None or d["gyro_dps"].shape[0] == 0:
-        raise ValueError(f"{path}: no gyro samples (the capture holds no described device data)")
-    if d["cut"]:
-        print(f"spinrig: note: {d['cut']}", file=sys.stderr)
-    return d["gyro_dps"], float(info.sample_rate_hz), float(info.full_scale_dps) or None
+    rec = load_record(path)
+    for note in rec.notes:
+        print(f"spinrig: note: {note}", file=sys.stderr)
+    return rec.gyro_dps, rec.fs_hz, rec.full_scale_dps
 
 
 def _write_profile(path: Path, modes, source: str, yes: bool) -> str:

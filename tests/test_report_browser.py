@@ -10,6 +10,7 @@ import os
 import re
 import shutil
 import subprocess
+from pathlib import Path
 
 import pytest
 
@@ -40,6 +41,16 @@ def chromium(*args, cwd):
     return subprocess.run(cmd, capture_output=True, text=True, cwd=cwd, timeout=120)
 
 
+def page_check(page: Path) -> dict:
+    """The in-page check's result for ``page``: a copy with :data:`CHECK` appended, in Chromium."""
+    check = page.with_name("check.html")
+    check.write_text(page.read_text(encoding="utf-8").replace("</body>", CHECK + "</body>"), encoding="utf-8")
+    p = chromium("--dump-dom", check.as_uri(), cwd=page.parent)
+    found = re.search(r"data-check=\"([^\"]+)\"", p.stdout)
+    assert found, p.stderr[-2000:]
+    return json.loads(found.group(1).replace("&quot;", '"'))
+
+
 @pytest.fixture(scope="module")
 def report(tmp_path_factory):
     d = tmp_path_factory.mktemp("report")
@@ -48,12 +59,7 @@ def report(tmp_path_factory):
 
 
 def test_every_image_loads_and_nothing_overflows_1280_pixels(report):
-    check = report.with_name("check.html")
-    check.write_text(report.read_text(encoding="utf-8").replace("</body>", CHECK + "</body>"), encoding="utf-8")
-    p = chromium("--dump-dom", check.as_uri(), cwd=report.parent)
-    found = re.search(r"data-check=\"([^\"]+)\"", p.stdout)
-    assert found, p.stderr[-2000:]
-    result = json.loads(found.group(1).replace("&quot;", '"'))
+    result = page_check(report)
     assert result["images"] == 3 and result["bad"] == 0
     assert result["over"] == 0 and result["scroll"] <= 1280
 
@@ -69,12 +75,7 @@ def test_the_tap_report_loads_every_image_within_1280_pixels(tmp_path):
     x, fs, fsd = _record(str(tmp_path / "taps.spinrec"))
     taps = analyse_taps(x, fs, fsd)
     page = write_tap_report("taps.spinrec", taps, combine(taps), tmp_path / "out")
-    check = page.with_name("check.html")
-    check.write_text(page.read_text(encoding="utf-8").replace("</body>", CHECK + "</body>"), encoding="utf-8")
-    p = chromium("--dump-dom", check.as_uri(), cwd=page.parent)
-    found = re.search(r"data-check=\"([^\"]+)\"", p.stdout)
-    assert found, p.stderr[-2000:]
-    result = json.loads(found.group(1).replace("&quot;", '"'))
+    result = page_check(page)
     assert result["images"] == 2 and result["bad"] == 0 and result["over"] == 0 and result["scroll"] <= 1280
 
 

@@ -27,6 +27,7 @@ class Record:
     throttle: np.ndarray  #: (m, motors), NaN when unknown
     meta: dict = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
+    full_scale_dps: float | None = None  #: the gyro's range where the device declared it (captures)
 
     @property
     def motors(self) -> int:
@@ -57,7 +58,7 @@ def load_record(path: str | Path) -> Record:
         why = d["cut"] or "no device description and no gyro block"
         raise RecordError(f"{p}: no gyro samples could be decoded ({why})")
     rec = Record(p, float(info.sample_rate_hz), d["time_s"], d["gyro_dps"], d["rpm_time_s"], d["rpm"],
-                 d["throttle"].astype(float), d["meta"] or {})
+                 d["throttle"].astype(float), d["meta"] or {}, full_scale_dps=float(info.full_scale_dps) or None)
     if d["cut"]:
         rec.notes.append(d["cut"])
     return rec

@@ -144,9 +144,3 @@ def build_map(frames: np.ndarray, freqs: np.ndarray, speeds: np.ndarray, throttl
     c = count[keep]
     return SweepMap(freqs, rsum[keep] / c, sums[keep] / c[:, None, None], c, thr[keep], ssum[keep] / c,
                     everything, frame_s, width)
-
-
-def frame_times(n_samples: int, fs_hz: float, t0_s: float, nperseg: int) -> np.ndarray:
-    """Centre times (s) of the frames :func:`psd_frames` makes (hop nperseg / 2)."""
-    starts = np.arange(0, max(n_samples - nperseg + 1, 0), nperseg // 2)
-    return t0_s + (starts + nperseg / 2) / fs_hz
