@@ -16,7 +16,7 @@ from ..rpm_estimate import RpmEstimator
 from .guidance import guidance
 from .imbalance import Imbalance, rank_imbalance
 from .record import Record
-from .sweep_map import SweepMap, build_map, frame_length, psd_frames, speeds_at
+from .sweep_map import SweepMap, build_map, frame_length, on_grid, psd_frames, speeds_at
 from .sweep_modes import Band, SweepMode, find_modes, order_bands
 
 MASKED_ORDERS = [float(k) for k in range(1, 13)]  #: order lines left out of the fixed spectrum (1x..12x)
@@ -71,12 +71,18 @@ def analyse(rec: Record, blades: int = 2, estimate_rpm: bool | None = None,
     forbids (False) the spectral speed estimate; by default it is used when there is no telemetry.
     ``notches`` [(centre Hz, width Hz)]: filters to judge against the modes found."""
     n = frame_length(rec.fs_hz)
-    starts, frames = psd_frames(rec.gyro_dps, rec.fs_hz, n, n // 2)
+    grid, valid = on_grid(rec.time_s, rec.gyro_dps, rec.fs_hz)  # lost blocks stay holes
+    starts, frames = psd_frames(grid, rec.fs_hz, n, n // 2, None if valid.all() else valid)
     freqs = np.fft.rfftfreq(n, 1.0 / rec.fs_hz)
-    tc = rec.time_s[starts + n // 2] if starts.size else np.zeros(0)
+    tc = rec.time_s[0] + (starts + n / 2) / rec.fs_hz if starts.size else np.zeros(0)
+    usable = np.all(np.isfinite(frames[:, :1, :]), axis=(1, 2))  # frames under half real: left out
+    frames = np.where(usable[:, None, None], frames, 0.0).astype(np.float32)
     have = rec.motors > 0 and rec.rpm_time_s.size >= 2 and np.any(np.nan_to_num(rec.rpm) > 0)
     estimated = (not have) if estimate_rpm is None else bool(estimate_rpm)
     notes = []
+    if starts.size and not usable.all():
+        notes.append(f"{np.count_nonzero(~usable)} of {starts.size} frames had under half their samples (lost "
+                     f"blocks: {100 * (1 - valid.mean()):.0f} % of the session missing) and were left out")
     if estimated:
         est = RpmEstimator(freqs, blades)
         speeds = np.array([[est.estimate(fr.sum(axis=1))] for fr in frames]) if frames.shape[0] else np.zeros((0, 1))
@@ -85,6 +91,7 @@ def analyse(rec: Record, blades: int = 2, estimate_rpm: bool | None = None,
     else:
         speeds = speeds_at(tc, rec.rpm_time_s, rec.rpm)
         throttle = speeds_at(tc, rec.rpm_time_s, rec.throttle) if np.any(np.isfinite(rec.throttle)) else None
+    speeds = np.where(usable[:, None], speeds, np.nan)
     m = build_map(frames, freqs, speeds, throttle, frame_s=n / rec.fs_hz)
     modes, fixed = find_modes(m, MASKED_ORDERS)
     bands = order_bands(m, modes, orders_followed(blades))

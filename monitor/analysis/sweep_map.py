@@ -23,25 +23,55 @@ def frame_length(fs_hz: float, seconds: float = 0.25) -> int:
     return int(2 ** np.clip(np.round(np.log2(max(fs_hz * seconds, 16.0))), 4, 16))
 
 
-def psd_frames(x: np.ndarray, fs_hz: float, nperseg: int, hop: int) -> tuple[np.ndarray, np.ndarray]:
-    """(starts (F,), PSD (F, nperseg // 2 + 1, C) float32) of the frames of ``x`` (n, C) that fit."""
+def on_grid(time_s: np.ndarray, x: np.ndarray, fs_hz: float) -> tuple[np.ndarray, np.ndarray]:
+    """``x`` (n, C) placed on a uniform sample grid from its times: (samples, real-sample mask),
+    holes (lost blocks, reconnects) zero and False, so frames never join samples across a gap."""
+    if time_s.size == 0:
+        return np.zeros((0, x.shape[1]), np.float32), np.zeros(0, bool)
+    idx = np.rint((time_s - time_s[0]) * fs_hz).astype(np.int64)
+    out = np.zeros((int(idx[-1]) + 1, x.shape[1]), np.float32)
+    valid = np.zeros(out.shape[0], bool)
+    out[idx] = x
+    valid[idx] = True
+    return out, valid
+
+
+def psd_frames(x: np.ndarray, fs_hz: float, nperseg: int, hop: int,
+               valid: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """(starts (F,), PSD (F, nperseg // 2 + 1, C) float32) of the frames of ``x`` (n, C) that fit.
+    With ``valid`` (n,) a frame holding missing samples is the periodogram of its real ones: mean
+    of the real samples removed, window times mask, power scaled by sum w^2 / sum (w m)^2 (the
+    live engine's masked frames, :meth:`monitor.spectra.RollingSTFT._masked`); a frame with
+    fewer than half its samples real is NaN."""
     x = np.asarray(x, dtype=np.float32)
     n = x.shape[0]
     if n < nperseg:
         return np.zeros(0, np.int64), np.zeros((0, nperseg // 2 + 1, x.shape[1]), np.float32)
     starts = np.arange(0, n - nperseg + 1, hop)
     w = np.hanning(nperseg + 1)[:-1].astype(np.float32)  # periodic Hann, as scipy.signal.get_window("hann")
-    scale = np.full(nperseg // 2 + 1, 2.0 / (fs_hz * float(np.sum(w.astype(np.float64) ** 2))), np.float32)
+    w2 = float(np.sum(w.astype(np.float64) ** 2))
+    scale = np.full(nperseg // 2 + 1, 2.0 / (fs_hz * w2), np.float32)
     scale[0] /= 2
     if nperseg % 2 == 0:
         scale[-1] /= 2
     out = np.empty((starts.size, nperseg // 2 + 1, x.shape[1]), np.float32)
     view = np.lib.stride_tricks.sliding_window_view(x, nperseg, axis=0)[::hop]  # (F, C, nperseg)
+    mview = None if valid is None else np.lib.stride_tricks.sliding_window_view(valid, nperseg)[::hop]
     for a in range(0, starts.size, CHUNK_FRAMES):
         seg = view[a:a + CHUNK_FRAMES].astype(np.float32)
-        seg = seg - seg.mean(axis=-1, keepdims=True)
+        if mview is None:
+            seg = seg - seg.mean(axis=-1, keepdims=True)
+            spec = np.fft.rfft(seg * w, axis=-1)
+            out[a:a + CHUNK_FRAMES] = np.moveaxis((spec.real ** 2 + spec.imag ** 2) * scale, -1, 1)
+            continue
+        m = mview[a:a + CHUNK_FRAMES].astype(np.float32)[:, None, :]  # (f, 1, nperseg)
+        real = m.sum(axis=-1, keepdims=True)
+        seg = (seg - (seg * m).sum(axis=-1, keepdims=True) / np.maximum(real, 1.0)) * m
+        wm2 = ((w * m) ** 2).sum(axis=-1)  # (f, 1)
         spec = np.fft.rfft(seg * w, axis=-1)
-        out[a:a + CHUNK_FRAMES] = np.moveaxis((spec.real ** 2 + spec.imag ** 2) * scale, -1, 1)
+        power = (spec.real ** 2 + spec.imag ** 2) * scale * (w2 / np.maximum(wm2, 1e-30))[..., None]
+        power[real[:, 0, 0] < nperseg / 2] = np.nan
+        out[a:a + CHUNK_FRAMES] = np.moveaxis(power, -1, 1)
     return starts, out
 
 
