@@ -14,11 +14,12 @@ stray-peak candidate when
 
 A candidate seen in :data:`MIN_HITS` searches over :data:`MIN_SPAN_S` at one frequency (within a
 bin) while the mean motor speed changed by :data:`MIN_RPM_CHANGE`, and by enough to move an order
-at that frequency by three bins, is a stray peak: an order cannot stand still while the speed
-changes, a resonance does (every order that passes it lights it up again). It is reported once,
-at the median of its interpolated frequencies, with the axis where it is largest. One resonance is
-one report: a later peak on the same axis within the wider of 3 % and either peak's half-power
-width of an earlier report updates that report instead of raising a new one.
+at that frequency by three bins, is a stray peak (a track that a search finds unseen for over :data:`FORGET_S` starts
+again): an order cannot stand still while the speed changes, a resonance does (every order
+that passes it lights it up again). It is reported once, at the Gaussian-interpolated centre of
+the sum of its frames' spectra, with the axis where it is largest. One resonance is one report: a
+later peak on the same axis within the wider of 3 % and the narrower half-power width of an
+earlier report updates that report instead of raising a new one.
 Typical causes: a loose part rattling, a cracked arm, a mode the profile has not learnt.
 """
 
@@ -41,6 +42,7 @@ MAX_ORDER = 12  #: orders 1..MAX_ORDER of every motor are never stray peaks (cov
 SAME_PEAK_FRACTION = 0.03  #: a later peak this close (or within the half-power width) is the same one
 ORDER_TOL_BINS = 3.0
 ORDER_TOL_FRACTION = 0.03
+FORGET_S = 2.0  #: an unreported track not seen for longer than this starts again
 
 
 def local_peaks(x: np.ndarray, height: np.ndarray, distance: int = 1) -> np.ndarray:
@@ -185,8 +187,8 @@ class StrayPeakFinder:
                     new = self._report(t_s, tr)
                     if new is not None:
                         out.append(new)
-        # forget tracks not seen for 2 s (bounded memory)
-        for k in [k for k, tr in self._tracks.items() if t_s - tr["last"] > 2.0 and not tr.get("reported")]:
+        # forget unreported tracks a search did not see for over FORGET_S (bounded memory)
+        for k in [k for k, tr in self._tracks.items() if t_s - tr["last"] > FORGET_S and not tr.get("reported")]:
             del self._tracks[k]
         return out
 
