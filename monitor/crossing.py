@@ -28,8 +28,10 @@ frame's end (:meth:`monitor.assembler.RpmTrack.trend`); "closing" needs the fitt
 :data:`SLOPE_SIGMAS` standard errors (plus :data:`SLOPE_FLOOR_RPM_S`) clear of zero, so speed
 jitter at a steady throttle is not an approach.
 
-The response level at the mode (dB re 1 (deg/s)^2/Hz, smoothed over 0.15 s, against a floor over
-0.6..1.4 f_n outside the band) is a severity carried by every event, not a state.
+The response level at the mode (dB re 1 (deg/s)^2/Hz: the highest bin within half a bin of the
+half-power band, smoothed over 0.15 s, against a floor: the mean level in dB over 0.6..1.4 f_n
+outside the band, smoothed over 3 s; first-order smoothing with those time constants) is a
+severity carried by every event, not a state.
 The *predicted band* of a group is 60 f_n (1 -+ zeta) / k RPM; its *observed band* is the RPM range
 over which the group was crossing (the speeds of the motors whose order was in the watch band).
 
@@ -377,7 +379,7 @@ class CrossingWatch:
         rpm_b = rpm[:, None, :, None]
         rpm_jump = prev_rpm[:, None, :, None] + (rpm_b - prev_rpm[:, None, :, None]) * frac
         # closing speed of each order toward its mode, Hz/s (> 0 approaching), when the trend is clear
-        sig = np.abs(slope) > SLOPE_SIGMAS * np.nan_to_num(slope_se, nan=np.inf) + SLOPE_FLOOR_RPM_S
+        sig = np.abs(slope) > SLOPE_SIGMAS * np.nan_to_num(slope_se, nan=np.inf, posinf=np.inf) + SLOPE_FLOOR_RPM_S
         v = -np.sign(s) * (np.nan_to_num(slope)[:, None, :, None] * self._mult60)
         closing = sig[:, None, :, None] & (v > 0)
         margin = self.margin[None, :, None, None]

@@ -1,0 +1,359 @@
+"""The crossing watch's rules, one at a time, at their thresholds, on exact speeds and spectra.
+
+The random passages of ``test_crossing_watch.py`` check the promises over realistic speed jitter;
+here each rule of the module docstring of ``monitor.crossing`` (and the README's "What the
+warnings mean") is put just inside and just outside its threshold with speeds, slopes and spectra
+given exactly, so that a changed constant, comparison or term fails a named test. The thresholds
+are spinrig's own rules, written out here as numbers (not read from the module), so the yardstick
+does not move with the code. The relations used: an order k of a motor at n RPM sits at
+k n / 60 Hz (Campbell diagram order lines); the half-power band of a mode is f_n (1 -+ zeta)
+(Rao, Mechanical Vibrations; REFERENCES.md).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from monitor import crossing
+from monitor.crossing import CrossingWatch
+from monitor.profile import Mode, Profile
+
+BIN = 8000 / 2048
+FREQS = np.arange(1025) * BIN
+HOP = 0.1
+FN = 200.0
+ZETA = 0.02
+W = ZETA * FN + BIN / 2 + 0.005 * FN  #: watch half band with telemetry: 6.953 Hz
+W_EST = ZETA * FN + BIN / 2 + 0.01 * FN  #: ... with an estimated speed: 7.953 Hz
+MARGIN = 0.10 * FN  #: the wider of 10 % of f_n and 3 zeta f_n (12 Hz): 20 Hz
+ALLOW = 1.5 * 0.005 * FN  #: exit allowance, the wider of zeta f_n / 4 (1 Hz) and 1.5 u f_n: 1.5 Hz
+
+
+def _profile(f_n=FN, zeta=ZETA):
+    # 3 blades: orders 1x, 2x, 3x and 6x; only order 1 comes near the mode in these tests
+    return Profile("bench", 3, "clamped", (Mode("arm", f_n, zeta, "pitch"),))
+
+
+def _rpm(offset_hz, f_n=FN):
+    """The speed (RPM) that puts order 1 ``offset_hz`` from the mode."""
+    return 60.0 * (f_n + offset_hz)
+
+
+def _feed(watch, rpm, slope=None, se=None, est=None, rms=None, t0=0.0, psd=None):
+    """Frames every HOP s from ``t0``: ``rpm`` (F,) for one motor or (F, motors); slopes in RPM/s."""
+    rpm = np.asarray(rpm, float)
+    rpm = rpm[:, None] if rpm.ndim == 1 else rpm
+    n = rpm.shape[0]
+
+    def arr(x):
+        if x is None:
+            return None
+        a = np.asarray(x, float)
+        return np.broadcast_to(a[:, None] if a.ndim == 1 else a, rpm.shape).copy()
+
+    t = t0 + np.arange(n) * HOP
+    p = np.full((n, FREQS.size), 1e-4) if psd is None else psd
+    e = None if est is None else np.full(n, est)
+    return watch.update(t, p, rpm, arr(slope), arr(se), e, arr(rms))
+
+
+def _states(events):
+    return [(e.state, round(e.t_s, 6)) for e in events]
+
+
+def _watch(motors=1, **kw):
+    return CrossingWatch(_profile(**kw), motors, FREQS, HOP)
+
+
+# ----------------------------------------------------------------- the watch band
+
+
+@pytest.mark.parametrize("side", [-1, 1])
+def test_crossing_is_declared_inside_the_watch_band_and_not_outside(side):
+    assert _states(_feed(_watch(), [_rpm(side * (W - 0.01))])) == [("crossing", 0.0)]
+    assert _feed(_watch(), [_rpm(side * (W + 0.01))]) == []
+
+
+def test_an_estimated_speed_widens_the_band_by_half_a_percent_of_f_n():
+    inside_est = _rpm(W_EST - 0.01)
+    assert _states(_feed(_watch(), [inside_est], est=True)) == [("crossing", 0.0)]
+    assert _feed(_watch(), [inside_est], est=False) == []
+    assert _feed(_watch(), [_rpm(W_EST + 0.01)], est=True) == []
+
+
+def test_the_crossing_event_carries_the_watch_band_predicted_band_and_the_motor():
+    (e,) = _feed(_watch(), [_rpm(3.0)])
+    assert e.watch_rpm == pytest.approx((60 * (FN - W), 60 * (FN + W)), rel=1e-12)
+    assert e.predicted_rpm == pytest.approx((60 * FN * (1 - ZETA), 60 * FN * (1 + ZETA)), rel=1e-12)
+    assert e.rpm == _rpm(3.0) and e.order_hz == pytest.approx(FN + 3.0) and e.order == 1.0
+    assert e.motor == 1 and e.previous == "clear" and e.reason == "order inside the watch band"
+    assert e.watch_rpm[0] <= e.rpm <= e.watch_rpm[1]
+
+
+def test_the_second_order_crosses_at_half_the_speed():
+    (e,) = _feed(_watch(), [30.0 * (FN + 3.0)])
+    assert e.order == 2.0 and e.order_hz == pytest.approx(FN + 3.0)
+    assert e.watch_rpm == pytest.approx((30 * (FN - W), 30 * (FN + W)), rel=1e-12)
+
+
+def test_a_frame_of_unknown_speed_changes_nothing():
+    w = _watch()
+    assert _feed(w, [np.nan, np.nan]) == []
+    assert w.group_states().max() == 0
+
+
+# ----------------------------------------------------------------- nearing
+
+
+@pytest.mark.parametrize("slope,raised", [(-35.01, True), (-34.99, False), (35.01, False)])
+def test_a_trend_is_an_approach_when_it_stands_three_standard_errors_plus_5_rpm_s_clear(slope, raised):
+    # 15 Hz above the mode, inside the 20 Hz margin: closing needs the speed to fall by more than
+    # 3 x 10 + 5 RPM/s
+    events = _feed(_watch(), [_rpm(15.0)], slope=[slope], se=[10.0])
+    assert _states(events) == ([("nearing", 0.0)] if raised else [])
+    if raised:
+        assert events[0].reason.startswith("closing at 0.6 Hz/s")
+
+
+@pytest.mark.parametrize("zeta,margin", [(ZETA, MARGIN), (0.05, 3 * 0.05 * FN)])
+def test_the_margin_is_the_wider_of_ten_percent_and_three_half_bandwidths(zeta, margin):
+    # closing at 0.1 Hz/s (6 RPM/s, exact slope): it would take minutes to reach the band, so only
+    # the margin counts
+    def raised(offset):
+        return _feed(_watch(zeta=zeta), [_rpm(offset)], slope=[-6.0], se=[0.0])
+
+    assert _states(raised(margin - 0.01)) == [("nearing", 0.0)]
+    assert raised(margin + 0.01) == []
+
+
+@pytest.mark.parametrize("seconds,raised", [(0.79, True), (0.81, False)])
+def test_an_order_that_would_reach_the_band_within_0_8_s_is_nearing(seconds, raised):
+    d = 50.0  # outside the margin
+    v = (d - W) / seconds  # Hz/s of order 1
+    events = _feed(_watch(), [_rpm(d)], slope=[-60.0 * v], se=[0.0])
+    assert _states(events) == ([("nearing", 0.0)] if raised else [])
+
+
+def _hot_psd(over_db, n=1):
+    """A flat spectrum with the bins inside the mode's half-power band (199.2 and 203.1 Hz)
+    ``over_db`` above it: the level at the mode stands that far over its floor."""
+    p = np.full((n, FREQS.size), 1e-4)
+    inside = (FREQS >= FN * (1 - ZETA)) & (FREQS <= FN * (1 + ZETA))
+    assert inside.sum() == 2
+    p[:, inside] *= 10 ** (over_db / 10)
+    return p
+
+
+@pytest.mark.parametrize("over,raised", [(6.01, True), (5.99, False)])
+def test_a_steady_order_inside_the_margin_is_nearing_when_the_response_stands_6_db_over(over, raised):
+    events = _feed(_watch(), [_rpm(15.0)], psd=_hot_psd(over))
+    assert _states(events) == ([("nearing", 0.0)] if raised else [])
+    if raised:
+        assert events[0].reason == "inside the margin with the response +6.0 dB over its floor"
+        assert events[0].over_floor_db == pytest.approx(6.01, abs=1e-9)
+
+
+def test_a_strong_response_with_no_order_inside_the_margin_is_not_nearing():
+    assert _feed(_watch(), [_rpm(MARGIN + 0.01)], psd=_hot_psd(20.0)) == []
+
+
+# ----------------------------------------------------------------- stepping down: hysteresis and dwell
+
+
+@pytest.mark.parametrize("skip_held", [True, False])
+@pytest.mark.parametrize("past,events", [
+    (ALLOW - 0.01, [("crossing", 0.0)]),  # within the exit allowance: stays crossing
+    (ALLOW + 0.01, [("crossing", 0.0), ("nearing", 0.5)]),  # past it: nearing after the dwell
+])
+def test_a_crossing_steps_down_past_the_exit_allowance_after_half_a_second(skip_held, past, events):
+    w = _watch()
+    w.skip_held = skip_held
+    got = _feed(w, [_rpm(0.0)] + [_rpm(W + past)] * 30)
+    assert _states(got) == events
+    if len(got) == 2:
+        assert got[1].reason == "left the band, still inside the margin"
+
+
+@pytest.mark.parametrize("offset,events", [
+    (1.15 * MARGIN - 0.01, [("crossing", 0.0), ("nearing", 0.5)]),  # inside 1.15 x the margin: stays nearing
+    (1.15 * MARGIN + 0.01, [("crossing", 0.0), ("clear", 0.5)]),
+])
+def test_nearing_holds_inside_1_15_times_the_margin(offset, events):
+    assert _states(_feed(_watch(), [_rpm(0.0)] + [_rpm(offset)] * 30)) == events
+
+
+def test_nearing_without_its_reason_clears_after_the_dwell():
+    # nearing by closing at frame 0; then far away and steady
+    got = _feed(_watch(), [_rpm(15.0)] + [_rpm(40.0)] * 10, slope=[-100.0] + [0.0] * 10, se=[0.0] * 11)
+    assert _states(got) == [("nearing", 0.0), ("clear", 0.5)]
+    assert got[1].reason == "no order inside the margin"
+
+
+def test_the_dwell_counts_from_the_last_frame_with_a_reason_to_stay():
+    # in band at 0 and at 0.3 s, out from 0.4 s: the step down comes 0.5 s after 0.3 s
+    seq = [_rpm(0.0), _rpm(W + 2), _rpm(W + 2), _rpm(0.0)] + [_rpm(W + 2)] * 10
+    assert _states(_feed(_watch(), seq)) == [("crossing", 0.0), ("nearing", 0.8)]
+
+
+def test_another_motor_still_closing_in_keeps_the_group_crossing():
+    # motor 1 crosses at 0 s and leaves far behind; motor 2 sits 15 Hz off the mode: closing in
+    # (its speed falls at 100 RPM/s) it holds the group; steady, the group steps down
+    rpm = np.array([[_rpm(0.0), _rpm(15.0)]] + [[_rpm(40.0), _rpm(15.0)]] * 10)
+    closing = np.array([[0.0, -100.0]] * 11)
+    assert _states(_feed(_watch(2), rpm, slope=closing, se=np.zeros((11, 2)))) == [("crossing", 0.0)]
+    got = _feed(_watch(2), rpm, slope=np.zeros((11, 2)), se=np.zeros((11, 2)))
+    assert _states(got) == [("crossing", 0.0), ("nearing", 0.5)]
+    assert [(m.motor, m.state) for m in got[0].motors] == [(1, "crossing"), (2, "nearing")]
+
+
+# ----------------------------------------------------------------- steps over the band between frames
+
+
+def test_a_step_over_the_whole_band_is_a_crossing_at_the_speed_that_met_the_mode():
+    # 10 Hz under the mode, then 15 Hz over it: order 1 met f_n 40 % of the way, at 12000 RPM
+    (e,) = _feed(_watch(), [_rpm(-10.0), _rpm(15.0)])
+    assert (e.state, e.t_s) == ("crossing", HOP)
+    assert e.rpm == pytest.approx(60 * FN, rel=1e-12) and e.order_hz == FN
+    assert e.reason.startswith("stepped over the band")
+    assert e.watch_rpm[0] <= e.rpm <= e.watch_rpm[1]
+
+
+def test_a_step_over_is_seen_across_two_updates_but_not_across_a_break():
+    w = _watch()
+    assert _feed(w, [_rpm(-10.0)]) == []
+    assert _states(_feed(w, [_rpm(15.0)], t0=HOP)) == [("crossing", HOP)]
+    w = _watch()
+    _feed(w, [_rpm(-10.0)])
+    w.break_series()
+    assert _feed(w, [_rpm(15.0)], t0=HOP) == []
+
+
+@pytest.mark.parametrize("after,crossed", [(11999.0, True), (12001.0, False)])
+def test_a_leap_of_more_than_a_quarter_of_the_speed_is_not_a_sweep(after, crossed):
+    # a mode at 175 Hz; 9000 RPM (150 Hz) to 12000 RPM (200 Hz) is a change of 25 % of the larger
+    got = _feed(_watch(f_n=175.0), [9000.0, after])
+    assert (len(got) == 1) == crossed
+
+
+def test_a_step_that_stays_on_one_side_or_lands_in_the_band_is_no_step_over():
+    assert _feed(_watch(), [_rpm(-30.0), _rpm(-10.0)]) == []
+    got = _feed(_watch(), [_rpm(-10.0), _rpm(3.0)])
+    assert [e.reason for e in got] == ["order inside the watch band"]
+
+
+# ----------------------------------------------------------------- motors that are not settled
+
+
+@pytest.mark.parametrize("share,crossed", [(0.0199, True), (0.0201, False)])
+def test_a_motor_straying_from_its_line_by_over_two_percent_raises_nothing(share, crossed):
+    r = _rpm(0.0)
+    assert (len(_feed(_watch(), [r], rms=[share * r])) == 1) == crossed
+    # nor a step over the band
+    assert (len(_feed(_watch(), [_rpm(-10.0), _rpm(15.0)], rms=[0.0, share * _rpm(15.0)])) == 1) == crossed
+
+
+# ----------------------------------------------------------------- observed bands
+
+
+def _sweep(watch, lo_hz, hi_hz, step_hz, t0=0.0):
+    fo = np.arange(lo_hz, hi_hz + step_hz / 2, step_hz) if step_hz > 0 else np.arange(lo_hz, hi_hz - step_hz / 2, step_hz)
+    rpm = 60.0 * fo
+    return rpm, _feed(watch, rpm, t0=t0)
+
+
+def test_the_observed_band_is_the_speed_range_over_which_the_order_was_in_the_watch_band():
+    w = _watch()
+    rpm, events = _sweep(w, FN - 30.0, FN + 30.0, 0.7)
+    assert [e.state for e in events] == ["crossing", "nearing", "clear"]
+    inside = rpm[np.abs(rpm / 60.0 - FN) <= W]
+    (b,) = w.observed_bands()
+    assert (b.rpm_low, b.rpm_high) == (inside.min(), inside.max())
+    assert b.motors == (1,) and b.order == 1.0 and b.passages == 1
+    assert b.predicted_rpm == pytest.approx((60 * FN * (1 - ZETA), 60 * FN * (1 + ZETA)))
+    assert b.t_start_s == pytest.approx(events[0].t_s) and b.t_end_s == pytest.approx(events[1].t_s)
+    assert b.peak_db == pytest.approx(-40.0)  # the flat 1e-4 (deg/s)^2/Hz
+
+
+def test_an_open_band_is_listed_with_no_end_yet():
+    w = _watch()
+    _feed(w, [_rpm(-3.0), _rpm(2.0)])
+    (b,) = w.observed_bands()
+    assert (b.rpm_low, b.rpm_high) == (_rpm(-3.0), _rpm(2.0)) and np.isnan(b.t_end_s)
+
+
+def test_passages_of_one_group_merge_into_one_band_over_them_all(monkeypatch):
+    # three passages with at most one kept apart: the older ones are merged, nothing is lost
+    monkeypatch.setattr(crossing, "MAX_PASSAGES", 1)
+    w = _watch()
+    r1, ev1 = _sweep(w, FN - 30.0, FN + 30.0, 0.7)
+    r2, _ = _sweep(w, FN + 30.0, FN - 30.0, -0.9, t0=100.0)
+    r3, _ = _sweep(w, FN - 30.0, FN + 30.0, 1.1, t0=200.0)
+    assert len(w.passages) == 1
+    allr = np.concatenate([r1, r2, r3])
+    inside = allr[np.abs(allr / 60.0 - FN) <= W]
+    (b,) = w.all_bands()
+    assert b.passages == 3
+    assert (b.rpm_low, b.rpm_high) == (inside.min(), inside.max())
+    assert b.t_start_s == ev1[0].t_s and b.t_end_s > 200.0
+
+
+def test_the_peak_level_of_a_band_is_the_highest_smoothed_level_while_crossing():
+    # the response at the mode rises by 10 dB at once in the third crossing frame; the level is
+    # smoothed with a 0.15 s time constant: after n frames it has come 1 - exp(-n hop / 0.15) of the way
+    n_in = 5
+    rpm = [_rpm(0.0)] * n_in + [_rpm(40.0)] * 10
+    psd = np.concatenate([_hot_psd(0.0, 2), _hot_psd(10.0, len(rpm) - 2)])
+    w = _watch()
+    _feed(w, rpm, psd=psd)
+    (b,) = w.observed_bands()
+    a = 1 - np.exp(-HOP / 0.15)
+    expected = -40.0 + 10.0 * (1 - (1 - a) ** (n_in - 2))  # frames 2..4 smoothed toward -30 dB
+    # the band closes at the step down (0.9 s, 0.5 s after the last frame in band), not when the
+    # order leaves: frames 2..8 count
+    later = -40.0 + 10.0 * (1 - (1 - a) ** 7)
+    assert b.peak_db == pytest.approx(later, abs=1e-9)
+    assert b.peak_db > expected
+
+
+# ----------------------------------------------------------------- levels
+
+
+def test_level_is_the_highest_bin_in_the_band_and_floor_the_mean_db_around_it():
+    rng = np.random.default_rng(4)
+    psd = rng.exponential(1e-4, (3, FREQS.size))
+    w = _watch()
+    level, floor = w.levels(psd)
+    db = 10 * np.log10(psd)
+    lo, hi = FN * (1 - ZETA), FN * (1 + ZETA)
+    band = (FREQS >= lo - BIN / 2) & (FREQS <= hi + BIN / 2)
+    around = (FREQS >= 0.6 * FN) & (FREQS <= 1.4 * FN) & ((FREQS < lo) | (FREQS > hi))
+    assert level[:, 0] == pytest.approx(db[:, band].max(axis=1), abs=1e-9)
+    assert floor[:, 0] == pytest.approx(db[:, around].mean(axis=1), abs=1e-9)
+
+
+def test_level_and_floor_are_smoothed_with_0_15_s_and_3_s_time_constants():
+    w = _watch()
+    _feed(w, [np.nan], psd=_hot_psd(0.0))  # the first frame starts both at -40 dB
+    states = []
+    for i in range(1, 6):
+        p = np.full((1, FREQS.size), 1e-3)  # everything 10 dB up
+        _feed(w, [np.nan], psd=p, t0=i * HOP)
+        states.append(w.mode_states()[0])
+    n = np.arange(1, 6)
+    lv = -40.0 + 10 * (1 - np.exp(-HOP / 0.15) ** n)
+    fl = -40.0 + 10 * (1 - np.exp(-HOP / 3.0) ** n)
+    assert [s["level_db"] for s in states] == pytest.approx(lv.tolist(), abs=1e-9)
+    assert [s["over_floor_db"] for s in states] == pytest.approx((lv - fl).tolist(), abs=1e-9)
+
+
+def test_mode_states_name_the_worst_group_and_its_motors():
+    w = _watch(2)
+    _feed(w, np.array([[_rpm(40.0), _rpm(2.0)]]))
+    (s,) = w.mode_states()
+    assert s["state"] == "crossing" and s["motors"] == [2] and s["order"] == 1.0
+    assert s["rpm"] == _rpm(2.0) and s["watch_rpm"] == pytest.approx((60 * (FN - W), 60 * (FN + W)))
+    w = _watch(2)
+    _feed(w, np.array([[_rpm(40.0), _rpm(-35.0)]]))
+    (s,) = w.mode_states()
+    assert s["state"] == "clear" and s["motors"] == [2] and s["motor"] == 2  # the nearest order
