@@ -261,7 +261,7 @@ class StreamDecoder:
                 continue
             t = body[0]
             if t == _GYRO:
-                count = body[_COUNT_AT] if blen > _COUNT_AT else 0
+                count = body[_COUNT_AT] if blen >= _GYRO_FIXED else 0  # a count byte, not a CRC byte
                 if count == 0 or blen != _GYRO_FIXED + 6 * count:
                     c.malformed += 1
                     c.bytes_skipped += n + 1
@@ -269,7 +269,7 @@ class StreamDecoder:
                     continue
                 gyro.append(body)
             elif merge and t == _MOTOR and _MOTOR in decoders:
-                mcount = body[6] if blen > 6 else 255
+                mcount = body[6] if blen >= 9 else 255  # the count byte (payload offset 4), not a CRC byte
                 if mcount > 8 or blen != 9 + 7 * mcount:
                     c.malformed += 1
                     c.bytes_skipped += n + 1
