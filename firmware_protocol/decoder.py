@@ -179,7 +179,8 @@ class StreamDecoder:
 
     def __init__(self, known_types: set[int] | None = None, merge: bool = False):
         #: merge=True (the host's live path): within one feed, every run of frames between two
-        #: DEVICE_INFO messages comes out as its other messages (Received), then one MotorBatch,
+        #: DEVICE_INFO messages (or a DEVICE_STATUS naming a new boot) comes out as its other
+        #: messages (Received), then one MotorBatch per motor count,
         #: then one GyroBatch. A device sends in time order, so every motor state up to a gyro
         #: sample's time is known before that sample is (SPEC 4.3); merging keeps per-frame Python
         #: work off the hot path.
@@ -293,7 +294,10 @@ class StreamDecoder:
                     self.rejected_payloads.append((t, body[1], str(exc)))
                     continue
                 if merge:
-                    if t == _INFO:
+                    # a run ends at DEVICE_INFO and at a DEVICE_STATUS from another boot, so what
+                    # the old boot sent is never reordered after the news of the new one
+                    if t == _INFO or (t == _STATUS and self._boot_id is not None
+                                      and int.from_bytes(body[6:10], "little") != self._boot_id):
                         self._flush_run(out, gyro, motor)
                         gyro, motor = [], []
                     out.append(Received(body[1], msg))

@@ -11,9 +11,9 @@ The assembler takes the decoder's items in stream order and produces:
 - :class:`DeviceChange`: a DEVICE_INFO (at connect, after a reboot).
 
 Time is *session time* in seconds: device time (microseconds, 32-bit, unwrapped by modular
-difference, SPEC 4.3) since the first sample, carried across reboots and reconnects with the
-host clock. Nothing here depends on how the byte stream was cut into reads, so a replay of a
-capture gives the same output as the live run.
+difference, SPEC 4.3) since the first device time seen (a sample's or a motor state's), carried
+across reboots and reconnects with the host clock. Nothing here depends on how the byte stream
+was cut into reads, so a replay of a capture gives the same output as the live run.
 """
 
 from __future__ import annotations

@@ -257,7 +257,7 @@ def test_a_motor_straying_from_its_line_by_over_two_percent_raises_nothing(share
 
 
 def _sweep(watch, lo_hz, hi_hz, step_hz, t0=0.0):
-    fo = np.arange(lo_hz, hi_hz + step_hz / 2, step_hz) if step_hz > 0 else np.arange(lo_hz, hi_hz - step_hz / 2, step_hz)
+    fo = np.arange(lo_hz, hi_hz + step_hz / 2, step_hz)  # up or down (a negative step)
     rpm = 60.0 * fo
     return rpm, _feed(watch, rpm, t0=t0)
 

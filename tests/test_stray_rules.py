@@ -12,12 +12,11 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import scipy.signal
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from monitor.profile import Mode, Profile
 from monitor.stray import StrayPeak, StrayPeakFinder, half_power_width_hz, local_peaks
-
-from hypothesis import given, settings
-from hypothesis import strategies as st
 
 from .conftest import examples
 

@@ -1,0 +1,254 @@
+"""The assembler's rules at their edges: the bridged hole's limit, session times across gaps and
+reboots, orphans, reconnects, the clock-drift estimate and the estimate trend.
+
+References: the speed trend's slope and its standard error are ordinary least squares, checked
+against ``scipy.stats.linregress``; the clock drift follows Moon, Skelly and Towsley (IEEE INFOCOM
+1999): the slope of the upper envelope of (host time, device - host) offsets.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.stats
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+import firmware_protocol as fp
+from monitor.assembler import Assembler, DeviceChange, EstimateTrend, Gap, MotorUpdate, Samples, _DriftFit
+
+from .conftest import examples
+
+FS = 8000.0
+INFO = fp.DeviceInfo(sens_num=164, sens_den=10, pole_pairs=7, motor_count=2, gyro_rate_mhz=8_000_000)
+
+
+def _frames(blocks, seq0=1):
+    """GYRO_BLOCK frames of (sample_seq, t_us, samples)."""
+    return [fp.encode_frame(fp.GyroBlock(s, t % 2**32, x), (seq0 + i) & 0xFF) for i, (s, t, x) in enumerate(blocks)]
+
+
+def _blocks(n, seq0=0, count=16, value=164, t_us0=0):
+    us = 1e6 / FS
+    return [(seq0 + k * count, int(t_us0 + k * count * us), np.full((count, 3), value, np.int16)) for k in range(n)]
+
+
+def _run(*reads, info=INFO):
+    """Feed reads (bytes, host time s) through a merged decoder and an assembler."""
+    dec, asm = fp.StreamDecoder(merge=True), Assembler()
+    out = []
+    for i, (data, host) in enumerate(reads):
+        if i == 0 and info is not None:
+            data = fp.encode_frame(info, 0) + data
+        out += asm.feed(dec.feed(data), host_s=host)
+    return asm, out
+
+
+def _samples(out):
+    return [o for o in out if isinstance(o, Samples)]
+
+
+# ----------------------------------------------------------------- the bridged hole
+
+
+@pytest.mark.parametrize("lost,bridged", [(400, True), (401, False)])
+def test_a_hole_of_up_to_50_ms_is_bridged_and_longer_breaks(lost, bridged):
+    # one-sample blocks: 400 samples are 50 ms at 8 kHz
+    b = _blocks(10, count=1) + [(10 + lost, int((10 + lost) * 125), np.full((1, 3), 164, np.int16))]
+    asm, out = _run((b"".join(_frames(b)), 0.0))
+    gaps = [o for o in out if isinstance(o, Gap)]
+    assert asm.stats.samples_lost == lost
+    assert (asm.stats.holes_bridged, len(gaps)) == ((1, 0) if bridged else (0, 1))
+    if not bridged:
+        assert (gaps[0].reason, gaps[0].lost_samples) == ("samples lost", lost)
+
+
+def test_a_bridged_hole_is_a_straight_line_between_its_ends():
+    b = _blocks(3, value=164) + [(16 * 3 + 7, 0, np.full((16, 3), 328, np.int16))]  # 7 lost, then 20 deg/s
+    asm, out = _run((b"".join(_frames(b)), 0.0))
+    fill = [s for s in _samples(out) if s.valid is not None]
+    assert len(fill) == 1 and fill[0].start == 48 and fill[0].valid.tolist() == [False] * 7
+    expected = 10.0 + 10.0 * np.arange(1, 8) / 8.0
+    assert fill[0].dps[:, 0] == pytest.approx(expected, rel=1e-6)
+    after = _samples(out)[-1]
+    assert after.start == 48 + 7 and after.t0_s == pytest.approx((48 + 7) / FS)
+
+
+# ----------------------------------------------------------------- session time
+
+
+def test_after_a_long_hole_the_new_segment_starts_at_its_device_time():
+    b = _blocks(40)
+    del b[3:30]  # blocks 3..29 lost: 432 samples
+    asm, out = _run((b"".join(_frames(b)), 0.0))
+    (gap,) = [o for o in out if isinstance(o, Gap)]
+    assert gap.t_s == pytest.approx(48 / FS)  # the end of the last sample before it
+    s = _samples(out)
+    assert [(x.segment, x.start) for x in s] == [(0, 0), (1, 0)]
+    assert s[1].t0_s == pytest.approx(30 * 16 / FS)  # device time of block 30
+    assert asm.stats.segments == 2 and asm.stats.gaps == 1
+
+
+def test_session_time_is_carried_over_a_reboot_with_the_host_clock():
+    before = b"".join(_frames(_blocks(5, seq0=1000)))
+    after = fp.encode_frame(fp.DeviceInfo(boot_id=7, gyro_rate_mhz=8_000_000), 9) + b"".join(
+        _frames(_blocks(3, seq0=0, t_us0=123_456_789), seq0=10))
+    asm, out = _run((before, 10.0), (after, 12.5))
+    assert asm.stats.reboots == 1
+    gap = [o for o in out if isinstance(o, Gap)]
+    assert [g.reason for g in gap] == ["device reboot"] and gap[0].t_s == pytest.approx(80 / FS)
+    (change,) = [o for o in out if isinstance(o, DeviceChange) and o.reboot]
+    assert change.info.boot_id == 7
+    s = _samples(out)
+    assert s[-1].segment == 1 and s[-1].t0_s == pytest.approx(80 / FS + 2.5)  # 2.5 s of host time passed
+
+
+def test_a_new_boot_in_a_status_is_a_reboot_once():
+    status = fp.encode_frame(fp.DeviceStatus(0, 5, 0, 0, 0, 0, 0, 0, 1), 30)
+    data = b"".join(_frames(_blocks(5, seq0=1000))) + status + b"".join(_frames(_blocks(3), seq0=31))
+    asm, out = _run((data, 0.0))
+    assert asm.stats.reboots == 1 and [g.reason for g in out if isinstance(g, Gap)] == ["device reboot"]
+    assert asm.stats.samples_lost == 0
+
+
+def test_a_counter_going_back_without_a_new_boot_id_is_a_reboot():
+    data = b"".join(_frames(_blocks(5, seq0=5000))) + b"".join(_frames(_blocks(3, seq0=0), seq0=40))
+    asm, out = _run((data, 0.0))
+    assert asm.stats.reboots == 1 and asm.stats.samples_lost == 0
+    s = _samples(out)
+    assert s[-1].segment == 1 and s[-1].t0_s >= s[0].t0_s + 80 / FS - 1e-12
+
+
+def test_blocks_and_motor_states_before_any_device_info_are_dropped_and_counted():
+    ms = fp.encode_frame(fp.MotorState(0, (fp.MotorEntry(7000, 0, 1),)), 20)
+    asm, out = _run((b"".join(_frames(_blocks(3))) + ms, 0.0), info=None)
+    assert asm.stats.orphan_blocks == 3 and asm.stats.samples == 0
+    assert not [o for o in out if isinstance(o, Samples | MotorUpdate)]
+
+
+def test_a_reconnect_opens_a_segment_and_counts_no_loss_across_it():
+    dec, asm = fp.StreamDecoder(merge=True), Assembler()
+    asm.feed(dec.feed(fp.encode_frame(INFO, 0) + b"".join(_frames(_blocks(4)))), host_s=0.0)
+    (gap,) = asm.mark_reconnect()
+    assert (gap.reason, gap.t_s) == ("reconnect", pytest.approx(64 / FS))
+    dec.reset()
+    out = asm.feed(dec.feed(b"".join(_frames(_blocks(2, seq0=640, t_us0=80_000)))), host_s=1.0)
+    s = _samples(out)
+    assert asm.stats.samples_lost == 0 and [x.segment for x in s] == [1]
+    assert s[0].t0_s == pytest.approx(0.08)
+
+
+def test_motor_updates_share_the_sample_time_base():
+    data = b"".join(_frames(_blocks(3))) + fp.encode_frame(
+        fp.MotorState(2000, (fp.MotorEntry(70_000, 5000, 1), fp.MotorEntry(7, 0, 0))), 50)
+    asm, out = _run((data, 0.0))
+    (mu,) = [o for o in out if isinstance(o, MotorUpdate)]
+    # the live path hands a read's motor states over before its samples; both are on one clock
+    assert mu.t_s[0] - _samples(out)[0].t0_s == pytest.approx(0.002, abs=1e-12)
+    assert mu.rpm.tolist() == [[10_000.0, 1.0]] and mu.valid.tolist() == [[True, False]]
+
+
+# ----------------------------------------------------------------- the clock drift
+
+
+def _realtime_reads(ppm, seconds, seed, rate_mhz=1_000_000, count=40):
+    """Reads of ``count``-sample blocks as a device whose clock runs ``ppm`` fast would deliver them,
+    each read at host time = device time / (1 + ppm 1e-6) plus a latency of at least 2 ms."""
+    rng = np.random.default_rng(seed)
+    fs = rate_mhz / 1000.0
+    n = int(seconds * fs / count)
+    info = fp.DeviceInfo(gyro_rate_mhz=rate_mhz)
+    reads = []
+    for k in range(n):
+        t_us = int(k * count / fs * 1e6)
+        frame = fp.encode_frame(fp.GyroBlock(k * count, t_us, np.zeros((count, 3), np.int16)), (k + 1) & 0xFF)
+        host = 100.0 + t_us * 1e-6 / (1 + ppm * 1e-6) + 0.002 + rng.exponential(0.001)
+        reads.append((frame, host))
+    return info, reads
+
+
+@pytest.mark.parametrize("ppm", [-150.0, 0.0, 80.0])
+def test_the_device_clock_drift_is_measured_after_ten_seconds(ppm):
+    info, reads = _realtime_reads(ppm, 14.0, seed=int(ppm) + 1000)
+    dec, asm = fp.StreamDecoder(merge=True), Assembler()
+    asm.feed(dec.feed(fp.encode_frame(info, 0)), host_s=reads[0][1])
+    seen_note = False
+    for data, host in reads:
+        asm.feed(dec.feed(data), host_s=host)
+        if asm.stats.drift_ppm is None:
+            seen_note |= asm.stats.drift_note.startswith("measuring:")
+    assert seen_note
+    # the latency comes within 0.1 ms of its least value (2 ms) a few times a second: the
+    # envelope's slope over 10 s and more is the drift to about 10 us / 10 s, 1 ppm
+    assert asm.stats.drift_ppm == pytest.approx(ppm, abs=2.0)
+
+
+def test_a_stream_faster_than_real_time_has_no_drift_figure():
+    info, reads = _realtime_reads(0.0, 14.0, seed=1)
+    dec, asm = fp.StreamDecoder(merge=True), Assembler()
+    asm.feed(dec.feed(fp.encode_frame(info, 0)), host_s=0.0)
+    for i, (data, _) in enumerate(reads):
+        asm.feed(dec.feed(data), host_s=i * 0.001)  # 14 s of device time in 0.35 s of host time
+    assert asm.stats.drift_ppm is None
+    # too little host time has passed for a figure at all
+    assert asm.stats.drift_note.startswith("measuring:")
+    for i in range(12):
+        asm.feed([], host_s=1.0 + i)  # host time goes on, the device does not: not real time
+    assert asm.stats.drift_ppm is None and "not in real time" in asm.stats.drift_note
+
+
+@settings(max_examples=examples(100), deadline=None)
+@given(st.floats(-500.0, 500.0), st.floats(-5.0, 5.0), st.integers(0, 2**31))
+def test_the_drift_is_the_slope_of_the_upper_envelope(ppm, offset, seed):
+    # offsets on a line minus any non-negative latency, the least latency (0) reached at least
+    # once in every second: the estimate is the line's slope, whatever the latencies above it
+    rng = np.random.default_rng(seed)
+    fit = _DriftFit()
+    for sec in range(30):
+        xs = sec + np.sort(rng.uniform(0.0, 1.0, 5))
+        lat = rng.exponential(0.01, 5)
+        lat[rng.integers(5)] = 0.0
+        for x, d in zip(xs, lat, strict=True):
+            fit.add(1000.0 + x, 1000.0 + offset + x * (1 + ppm * 1e-6) - d)
+    fit.add(1031.0, 1031.0 + offset + 31.0 * (1 + ppm * 1e-6))  # closes the last second
+    assert fit.ppm() == pytest.approx(ppm, abs=1e-3)
+    assert len(fit.hull) < 10  # a straight envelope keeps a handful of corners
+
+
+# ----------------------------------------------------------------- the estimate trend
+
+
+@settings(max_examples=examples(100), deadline=None)
+@given(st.lists(st.floats(-0.2, 0.2), min_size=3, max_size=12, unique=True), st.floats(1000.0, 30000.0),
+       st.floats(-3000.0, 3000.0), st.integers(0, 2**31))
+def test_estimate_trend_is_ordinary_least_squares(offsets, rpm0, slope, seed):
+    rng = np.random.default_rng(seed)
+    t = np.sort(10.0 + np.array(offsets)) + np.arange(len(offsets)) * 0.03  # within 0.5 s of the last
+    t = t[t >= t[-1] - 0.5]
+    r = rpm0 + slope * (t - t[0]) + rng.normal(0, 20.0, t.size)
+    tr = EstimateTrend()
+    for ti, ri in zip(t, r, strict=True):
+        got = tr.add(float(ti), float(ri))
+    if t.size < 3:
+        assert got[0] == r[-1] and np.isnan(got[1])
+        return
+    ref = scipy.stats.linregress(t, r)
+    assert got[1] == pytest.approx(ref.slope, rel=1e-6, abs=1e-6)
+    assert got[2] == pytest.approx(ref.stderr, rel=1e-6, abs=1e-9)
+    assert got[0] == pytest.approx(max(ref.intercept + ref.slope * t[-1], 0.0), rel=1e-9, abs=1e-6)
+    res = r - (ref.intercept + ref.slope * t)
+    assert got[3] == pytest.approx(np.sqrt(res @ res / (t.size - 2)), rel=1e-6, abs=1e-9)
+
+
+def test_estimate_trend_keeps_estimates_up_to_its_span_and_skips_missing_ones():
+    tr = EstimateTrend(span_s=0.5)
+    tr.add(0.0, 1000.0)
+    tr.add(0.25, 1100.0)
+    assert np.isnan(tr.add(0.3, np.nan)[0])  # no estimate now: nothing to say
+    fit, sl, _, _ = tr.add(0.5, 1200.0)  # the one at 0.0 is exactly 0.5 s old: kept
+    assert sl == pytest.approx(400.0) and fit == pytest.approx(1200.0)
+    fit, sl, _, _ = tr.add(0.6, 1240.0)  # now it is dropped: three left (0.25, 0.5, 0.6)
+    ref = scipy.stats.linregress([0.25, 0.5, 0.6], [1100.0, 1200.0, 1240.0])
+    assert sl == pytest.approx(ref.slope)
+    tr.clear()
+    assert tr.add(1.0, 900.0)[0] == 900.0 and np.isnan(tr.add(1.1, 950.0)[1])
