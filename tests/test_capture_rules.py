@@ -124,7 +124,8 @@ def test_a_damaged_chunk_is_one_range_from_its_start_to_the_next_chunk_that_chec
     assert [(ch.kind, ch.payload) for ch in c.chunks] == [("X", b""), ("D", b"two")]
     assert c.chunks[0].offset == start  # the break in the byte stream, where the damage was
     msg = c.cut_message()
-    assert msg == f"{f}: 1 damaged range(s) skipped, {len(b)} bytes (bytes {start}-{start + len(b)}: chunk fails its CRC)"
+    span = f"bytes {start}-{start + len(b)}"
+    assert msg == f"{f}: 1 damaged range(s) skipped, {len(b)} bytes ({span}: chunk fails its CRC)"
 
 
 def test_a_false_sync_inside_the_damage_is_passed_over_by_its_crc(tmp_path):
