@@ -99,6 +99,10 @@ class Link:
         self._last_byte = time.monotonic()
         self._silent = False
         self._gone_at: float | None = None
+        #: called in the reader thread with (now, items) for every read and with each LinkMessage,
+        #: before the consumer's queue (a bench controller must hear of outcomes and of a lost
+        #: link at once, whatever the consumer is doing); they must be quick and never raise
+        self.observers: list = []
 
     # ---------------------------------------------------------------- lifecycle
 
@@ -129,17 +133,23 @@ class Link:
 
     def send(self, msg) -> bool:
         """Encode and write one message; thread-safe. False when the port is down."""
+        return self.send_seq(msg) is not None
+
+    def send_seq(self, msg) -> int | None:
+        """As :meth:`send`, returning the frame seq it went out with (the device's COMMAND_OUTCOME
+        echoes it), or None when the port is down."""
         with self._write_lock:
             port = self._port
             if port is None:
-                return False
-            frame = fp.encode_frame(msg, self._seq)
+                return None
+            seq = self._seq
+            frame = fp.encode_frame(msg, seq)
             self._seq = (self._seq + 1) & 0xFF
             try:
                 port.write(frame)
-                return True
+                return seq
             except (OSError, serial.SerialException):
-                return False
+                return None
 
     def _hello(self) -> None:
         self._send_all(self.rules.start(time.monotonic()))
@@ -163,6 +173,9 @@ class Link:
     # ---------------------------------------------------------------- reading
 
     def _put(self, item) -> None:
+        if isinstance(item, LinkMessage):
+            for obs in self.observers:
+                obs(item)
         try:
             self.queue.put_nowait(item)
         except queue.Full:
@@ -210,6 +223,8 @@ class Link:
                     cap.write_data(data, now)
                 items = self.decoder.feed(data)
                 self._sync_health()
+                for obs in self.observers:
+                    obs((now, items))
                 self._session(items, now)
                 if items:
                     self._put((now, items))
