@@ -13,6 +13,7 @@ examples:
   spinrig watch PORT --headless --profile FILE    watch a live airframe
   spinrig replay FILE --headless                  a capture through the same pipeline
   spinrig analyze FILE --report DIR               modes, RPM bands, imbalance of a sweep
+  spinrig sweep PORT --ramp 10:60:30 --capture F  spin the motors through a throttle ramp
   spinrig ports                list serial ports
   spinrig sim quillback7       a simulated flight controller on a pty
 
@@ -325,6 +326,71 @@ def _add_analyze(sub) -> None:
     p.set_defaults(func=lambda a: __import__("monitor.analyze_command", fromlist=["run"]).run(a))
 
 
+def _add_sweep(sub) -> None:
+    p = sub.add_parser(
+        "sweep",
+        help="spin the motors through a throttle plan and record it (bench only)",
+        description="Drive the device's motors through a sweep plan and record the run: a ramp from the "
+                    "command line or a TOML plan (ramps, holds, steps; all motors or one at a time; limits on "
+                    "throttle, duration and slew; abort rules). The plan is checked against the device's motor "
+                    "count and declared throttle ceiling before anything is armed, then shown with the bench "
+                    "cautions, and nothing is armed until you confirm (type SPIN at a terminal, or pass "
+                    "--yes-spin-the-motors). Set-points go out at 50 Hz. The motors are stopped, and the "
+                    "device's acknowledgement checked, at the plan's end, on Ctrl-C, SIGTERM, an abort rule "
+                    "(gyro level, lost motor telemetry, link errors, a strong crossing), a lost link, an error "
+                    "and at exit; if the host dies, the device's own heartbeat timeout stops them. At the end "
+                    "the capture is analysed (modes, bands, imbalance). Exit 0 plan done, 3 stopped early, "
+                    "1 stop not acknowledged or the device would not arm, 2 bad usage or plan or no "
+                    "confirmation (nothing armed).",
+        epilog="""examples:
+  spinrig sweep sim://brisling5?script=0 --ramp 10:60:30 --capture ramp.spinrec
+  spinrig sweep /dev/ttyACM0 --plan plans/imbalance.toml --capture imb.spinrec --props off
+  spinrig sweep /dev/ttyACM0 --ramp 15:45:20 --one-at-a-time --capture solo.spinrec --yes-spin-the-motors
+
+A plan file (throttle in percent of the device's range):
+  [plan]
+  name = "full sweep"
+  max_throttle = 60          # never above the device's own ceiling
+  max_duration_s = 120       # the whole schedule, slew and rests included
+  slew_percent_per_s = 20    # no set-point moves faster; a step is taken as a ramp
+  one_at_a_time = false      # true: each motor alone, the others at zero
+  repeats = 1
+  [[piece]]
+  kind = "ramp"              # or "hold" (level, seconds) or "steps" (levels, dwell_s)
+  from = 10
+  to = 60
+  seconds = 40
+  [abort]                    # 0 turns a rule off
+  gyro_rms_dps = 400
+  telemetry_lost_s = 0.5
+  link_errors_per_s = 5
+  crossing_over_floor_db = 25
+
+Bench safety: props off or the frame clamped, eye protection, clear of the prop arc, a current-limited
+supply and a physical kill switch within reach. Follow local rules and the manufacturer's instructions.""",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument("port", metavar="PORT", help="device path or pyserial URL")
+    how = p.add_mutually_exclusive_group(required=True)
+    how.add_argument("--plan", metavar="FILE.toml", help="a sweep plan (TOML; see below)")
+    how.add_argument("--ramp", metavar="FROM:TO:SECONDS", help="one ramp of throttle %%, for example 10:60:30")
+    p.add_argument("--capture", metavar="FILE.spinrec", required=True, help="record the run losslessly to FILE")
+    p.add_argument("--one-at-a-time", action="store_true", help="run the plan for each motor alone (imbalance)")
+    p.add_argument("--max-throttle", type=bounded(float, 0.0, 100.0, lo_open=True, what="throttle %"),
+                   metavar="PERCENT", help="a lower throttle limit than the plan's (a ramp's default: its top)")
+    p.add_argument("--yes-spin-the-motors", action="store_true",
+                   help="confirm without a terminal (headless runs); you have cleared the bench")
+    p.add_argument("--device-timeout", type=DURATION_S, default=5.0, metavar="S",
+                   help="wait this long for the device to describe itself (default 5 s)")
+    p.add_argument("--baud", type=BAUD, default=921_600, help="baud rate (default 921600; ignored by USB CDC)")
+    p.add_argument("--profile", metavar="FILE", help="frame profile (TOML): crossings and the crossing abort rule")
+    p.add_argument("--json", action="store_true", help="print events, the stop and the analysis as JSON lines")
+    p.add_argument("--mounting", choices=["bungee", "foam", "clamp", "hand"], help="how the airframe is held")
+    p.add_argument("--props", choices=["on", "off"], help="props on or off for this run")
+    p.add_argument("--note", help="a free note stored in the capture")
+    p.set_defaults(func=lambda a: __import__("monitor.bench.command", fromlist=["run"]).run(a))
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="spinrig",
@@ -340,6 +406,7 @@ def build_parser() -> argparse.ArgumentParser:
     _add_export(sub)
     _add_tap(sub)
     _add_analyze(sub)
+    _add_sweep(sub)
     _add_ports(sub)
     _add_sim(sub)
     return parser

@@ -6,7 +6,8 @@ stop never waits for the consumer. Running a plan:
 
 1. the device must have described itself; the plan is checked against it (motor count, its
    declared throttle ceiling) before anything is armed;
-2. ARM_BENCH with a fresh random nonce; the answer must be OK and echo the nonce (a refusal,
+2. the device must be alive (a DEVICE_STATUS within :data:`STALE_S`); ARM_BENCH with a fresh
+   random nonce; the answer must be OK and echo the nonce (a refusal,
    another answer or none within :data:`ANSWER_S` arms nothing, and says so);
 3. a driver thread sends SET_THROTTLE at :data:`RATE_HZ` (every set-point from the plan's
    slew-limited schedule, clamped again to the plan's and the device's limits), which also keeps
@@ -43,6 +44,7 @@ RATE_HZ = 50.0  #: set-points a second (SET_THROTTLE), well inside a 500 ms hear
 ANSWER_S = 1.0  #: how long a command's answer may take
 STOP_TRIES = 3
 ERROR_WINDOW_S = 1.0
+STALE_S = 1.0  #: a device with no DEVICE_STATUS for this long (5 a second are due) is not armed
 
 
 class BenchError(RuntimeError):
@@ -106,6 +108,7 @@ class BenchController:
         self._thread: threading.Thread | None = None
         self._nonce = 0
         self._disarmed_at: float | None = None  #: host time a status last said disarmed
+        self._status_at: float | None = None  #: host time of the last DEVICE_STATUS
         self._valid_at = np.zeros(0)  #: host time each motor last had live telemetry
         self._errors: deque[tuple[float, int]] = deque(maxlen=256)
         self._times = self._thr = None
@@ -135,6 +138,7 @@ class BenchController:
                             self._valid_at = np.full(m.motor_count, now)
                     elif isinstance(m, fp.DeviceStatus):
                         self.status = m
+                        self._status_at = now
                         if m.bench_state == fp.BenchState.DISARMED:
                             self._disarmed_at = now
                     elif isinstance(m, fp.MotorState) and m.motors:
@@ -205,9 +209,20 @@ class BenchController:
             return self.info
 
     def check(self) -> None:
-        """The plan against the device (raises PlanError naming the field)."""
+        """The plan against the device (raises PlanError naming the field), and the device alive:
+        a DEVICE_STATUS within :data:`STALE_S` (raises BenchError)."""
         info = self.info
         self.plan.check_device(info.motor_count, info.throttle_ceiling / 100.0)
+        end = time.monotonic() + STALE_S
+        with self._cond:
+            while self._status_at is None or time.monotonic() - self._status_at > STALE_S:
+                left = end - time.monotonic()
+                if left <= 0:
+                    seen = ("never sent a DEVICE_STATUS" if self._status_at is None else
+                            f"sent no DEVICE_STATUS for {time.monotonic() - self._status_at:.1f} s")
+                    raise BenchError(f"{self.link.port_name}: the device {seen} (at least 5 a second are due): "
+                                     "stale, nothing armed")
+                self._cond.wait(left)
 
     def _answer(self, seq: int | None, after: float, timeout_s: float = ANSWER_S) -> fp.CommandOutcome | None:
         if seq is None:

@@ -153,8 +153,8 @@ class Plan:
                  f"a crossing {a.crossing_over_floor_db:g} dB over its floor" if a.crossing_over_floor_db else None]
         lines.append(f"  limits: throttle at most {self.max_throttle:g} %, slew {self.slew_percent_per_s:g} %/s, "
                      f"at most {self.max_duration_s:g} s")
-        lines.append("  stops at once on: " + ", ".join(r for r in rules if r) + ", the abort key, Ctrl-C, "
-                     "a lost link")
+        lines.append("  stops at once on: " + ", ".join(r for r in rules if r) + ", Ctrl-C or SIGTERM, "
+                     "a lost link, an error, the end of the plan")
         return lines
 
 
@@ -209,7 +209,8 @@ def _num(d: dict, key: str, where: str, lo: float | None = None, hi: float | Non
 
 
 def _level(d: dict, key: str, where: str, max_throttle: float, default: float | None = None) -> float:
-    v = _num(d, key, where, 0.0, 100.0, default)
+    """A throttle level, %, to the device's resolution (0.01 %)."""
+    v = round(_num(d, key, where, 0.0, 100.0, default), 2)
     if v > max_throttle:
         raise PlanError(f"{where}.{key}: {v:g} % is above plan.max_throttle ({max_throttle:g} %)")
     return v

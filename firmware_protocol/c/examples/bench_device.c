@@ -63,12 +63,22 @@ static double hal_clock_s(void)
 /* Microseconds since boot (wraps at 2^32, as the protocol's device time does). */
 static uint32_t hal_now_us(void) { return (uint32_t)(uint64_t)((hal_clock_s() - hal_t0) * 1e6); }
 
-/* Write all of a frame; a closed host is not an error here (the watchdog handles it). */
+/* Write a frame without ever blocking: when the host does not read (it closed, or it is slow) the
+ * output is dropped, as a UART's full transmit buffer would drop it; the host's decoder counts the
+ * damage and resynchronises at the next delimiter. A closed host is not an error here: the
+ * heartbeat watchdog handles it. */
 static void hal_write(const uint8_t *buf, size_t len)
 {
-    while (len > 0) {
+    int tries = 0;
+    while (len > 0 && tries < 50) {
         ssize_t n = write(hal_out, buf, len);
-        if (n < 0 && errno == EINTR) {
+        if (n < 0 && (errno == EINTR || errno == EAGAIN)) {
+            struct pollfd p;
+            p.fd = hal_out;
+            p.events = POLLOUT;
+            p.revents = 0;
+            (void)poll(&p, 1, 1);
+            tries++;
             continue;
         }
         if (n <= 0) {
@@ -259,6 +269,7 @@ int main(int argc, char **argv)
             return 1;
         }
     }
+    (void)fcntl(hal_out, F_SETFL, fcntl(hal_out, F_GETFL) | O_NONBLOCK);
     hal_t0 = hal_clock_s();
 
     memset(&info, 0, sizeof info);

@@ -1,0 +1,444 @@
+"""Spin tests: sweep plans, and every stop path against both devices we ship.
+
+The devices are real implementations of the protocol: the Python simulator (``sim://``, in this
+process) and the C reference built as a bench device (``firmware_protocol/c/examples``, its own
+process on a pseudo-terminal). Where a test asserts *that* something stopped, it waits on the
+condition with a timeout that only guards against a hang; no test asserts how fast (the latencies
+are printed by ``benchmarks/stop_latency.py``).
+"""
+
+from __future__ import annotations
+
+import os
+import select
+import signal
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+import firmware_protocol as fp
+from monitor.bench import controller as bench_controller
+from monitor.bench.controller import BenchController, BenchError
+from monitor.bench.plan import Plan, PlanError, load_plan, plan_from_dict, ramp_plan, setpoints
+from monitor.link import Link
+
+from .conftest import examples
+
+ROOT = Path(__file__).resolve().parents[1]
+C_DIR = ROOT / "firmware_protocol" / "c"
+
+
+def _wait(cond, timeout=10.0, what="condition"):
+    end = time.monotonic() + timeout
+    while not cond():
+        if time.monotonic() > end:
+            raise AssertionError(f"timed out waiting for {what}")
+        time.sleep(0.01)
+
+
+# ----------------------------------------------------------------- plans
+
+
+def _doc(**plan):
+    return {"plan": {"max_throttle": 50, **plan}, "piece": [{"kind": "ramp", "from": 10, "to": 40, "seconds": 4}]}
+
+
+@pytest.mark.parametrize("doc,match", [
+    ({"piece": []}, r"plan: missing"),
+    (_doc(max_throttle=120), r"plan\.max_throttle: 120 is outside 0\.\.100"),
+    (_doc(max_throttle="fast"), r"plan\.max_throttle: 'fast' is not a number"),
+    (_doc(slew_percent_per_s=0), r"plan\.slew_percent_per_s: 0 must be above 0"),
+    (_doc(repeats=1.5), r"plan\.repeats: 1\.5 is not a whole number"),
+    (_doc(one_at_a_time="yes"), r"plan\.one_at_a_time: 'yes' is not true or false"),
+    (_doc(motors=[1, 1]), r"plan\.motors: \[1, 1\] is not a list of distinct motor numbers"),
+    (_doc(speed=3), r"plan\.speed: unknown field"),
+    ({"plan": {"max_throttle": 50}}, r"piece: missing"),
+    ({"plan": {"max_throttle": 50}, "piece": [{"kind": "spin"}]}, r"piece 1\.kind: 'spin' is not one of"),
+    ({"plan": {"max_throttle": 50}, "piece": [{"kind": "hold", "level": 60, "seconds": 1}]},
+     r"piece 1\.level: 60 % is above plan\.max_throttle \(50 %\)"),
+    ({"plan": {"max_throttle": 50}, "piece": [{"kind": "ramp", "from": 0, "to": 50, "seconds": 1}]},
+     r"piece 1\.seconds: 0 -> 50 % in 1 s is 50 %/s, faster than plan\.slew_percent_per_s \(25\)"),
+    ({"plan": {"max_throttle": 50}, "piece": [{"kind": "steps", "levels": [], "dwell_s": 1}]},
+     r"piece 1\.levels: missing or empty"),
+    ({"plan": {"max_throttle": 50}, "piece": [{"kind": "hold", "level": 20, "seconds": 1, "from": 3}]},
+     r"piece 1\.from: not a field of a hold"),
+    ({**_doc(), "abort": {"gyro": 3}}, r"abort\.gyro: unknown field"),
+    ({**_doc(), "extra": {}}, r"extra: unknown section"),
+])
+def test_a_bad_plan_is_one_line_naming_the_field(doc, match):
+    with pytest.raises(PlanError, match=match) as exc:
+        plan_from_dict(doc, "p.toml")
+    assert "\n" not in str(exc.value) and str(exc.value).startswith("p.toml: ")
+
+
+def test_a_plan_file_that_is_not_toml_or_not_there_names_the_file(tmp_path):
+    f = tmp_path / "bad.toml"
+    f.write_text("[plan\nmax_throttle = 3")
+    with pytest.raises(PlanError, match=r"bad\.toml: not valid TOML"):
+        load_plan(f)
+    with pytest.raises(PlanError, match=r"none\.toml: cannot read"):
+        load_plan(tmp_path / "none.toml")
+
+
+def test_ramp_spec_errors_name_the_option():
+    with pytest.raises(PlanError, match=r"^--ramp: '10:20' is not FROM:TO:SECONDS$"):
+        ramp_plan("10:20")
+    with pytest.raises(PlanError, match=r"^--ramp\.seconds: 0 -> 90 % in 1 s is 90 %/s"):
+        ramp_plan("0:90:1")
+
+
+def test_the_plan_is_checked_against_the_device():
+    p = plan_from_dict(_doc(max_throttle=90, max_duration_s=5), "p.toml")
+    with pytest.raises(PlanError, match=r"plan\.max_throttle: 90 % is above the device's declared ceiling of 80 %"):
+        p.check_device(4, 80.0)
+    with pytest.raises(PlanError, match=r"drives no motors of its own"):
+        p.check_device(4, 0.0)
+    # 1 s at rest, up to 10 % at 25 %/s (0.4 s), the 4 s ramp, down from 40 % (1.6 s), 1 s at rest
+    with pytest.raises(PlanError, match=r"plan\.max_duration_s: the schedule takes 8\.0 s"):
+        p.check_device(4, 100.0)
+    q = plan_from_dict(_doc(motors=[5]), "p.toml")
+    with pytest.raises(PlanError, match=r"plan\.motors: motor 5 is not one of the device's 1\.\.4"):
+        q.check_device(4, 100.0)
+
+
+pieces = st.one_of(
+    st.builds(lambda a, b, s: {"kind": "ramp", "from": a, "to": b, "seconds": s},
+              st.floats(0, 60), st.floats(0, 60), st.floats(3.0, 30.0)),
+    st.builds(lambda a, s: {"kind": "hold", "level": a, "seconds": s}, st.floats(0, 60), st.floats(0.1, 10.0)),
+    st.builds(lambda lv, d: {"kind": "steps", "levels": lv, "dwell_s": d},
+              st.lists(st.floats(0, 60), min_size=1, max_size=5), st.floats(0.1, 5.0)),
+)
+
+
+@settings(max_examples=examples(200), deadline=None)
+@given(st.lists(pieces, min_size=1, max_size=4), st.floats(60.0, 100.0), st.floats(20.0, 100.0), st.booleans(),
+       st.integers(1, 3), st.integers(1, 8), st.lists(st.floats(-1.0, 1.0), min_size=20, max_size=20))
+def test_the_schedule_never_exceeds_its_limits(raw, max_thr, slew, solo, repeats, motors, probes):
+    plan = plan_from_dict({"plan": {"max_throttle": max_thr, "slew_percent_per_s": slew, "one_at_a_time": solo,
+                                    "repeats": repeats, "max_duration_s": 1e6}, "piece": raw}, "h.toml")
+    t, thr = plan.schedule(motors)
+    assert t[0] == 0.0 and np.all(np.diff(t) >= 0)
+    assert np.all(thr >= 0) and thr.max() <= max_thr + 1e-9
+    assert np.all(thr[0] == 0) and np.all(thr[-1] == 0)  # starts and ends stopped
+    dt, dv = np.diff(t), np.abs(np.diff(thr, axis=0)).max(axis=1)
+    moving = dt > 0
+    assert np.all(dv[moving] <= slew * dt[moving] * (1 + 1e-9) + 1e-9)  # no set-point moves faster than the slew
+    assert np.all(dv[~moving] == 0)  # and none jumps
+    if solo:
+        assert np.all((thr > 0).sum(axis=1) <= 1)  # one motor at a time
+    at = np.concatenate([np.linspace(-1, t[-1] + 1, 200), (np.asarray(probes) + 1) / 2 * t[-1]])
+    sp = setpoints(t, thr, at)
+    assert sp.max() <= max_thr + 1e-9 and sp.min() >= 0
+
+
+def test_one_at_a_time_runs_each_motor_alone_with_a_rest_between():
+    plan = plan_from_dict(_doc(one_at_a_time=True, motors=[2, 3]), "p.toml")
+    t, thr = plan.schedule(4)
+    on = [np.flatnonzero(thr[:, m] > 0) for m in range(4)]
+    assert on[0].size == 0 and on[3].size == 0
+    assert t[on[1][-1]] < t[on[2][0]]  # motor 2 is done before motor 3 starts
+    assert setpoints(t, thr, t[on[1][0]] + 1.0)[1] > 0
+
+
+# ----------------------------------------------------------------- devices
+
+
+@pytest.fixture(scope="session")
+def c_device(tmp_path_factory):
+    build = tmp_path_factory.mktemp("cdev")
+    p = subprocess.run(["make", "-C", str(C_DIR), "device", f"BUILD={build}"], capture_output=True, text=True,
+                       timeout=240)
+    assert p.returncode == 0, p.stdout + p.stderr
+    return build / "bench_device"
+
+
+class CDevice:
+    """The C bench device on its own pty; its stderr lines collected with the wall time they came."""
+
+    def __init__(self, exe, *args):
+        self.proc = subprocess.Popen([str(exe), "--pty", "--seconds", "120", *args], stderr=subprocess.PIPE,
+                                     stdout=subprocess.DEVNULL, stdin=subprocess.DEVNULL)
+        self.lines: list[tuple[float, str]] = []
+        first = self.proc.stderr.readline().decode()
+        assert first.startswith("spinrig bench device on "), first
+        self.path = first.split()[-1]
+        self._t = threading.Thread(target=self._read, daemon=True)
+        self._t.start()
+
+    def _read(self):
+        for raw in self.proc.stderr:
+            self.lines.append((time.monotonic(), raw.decode().strip()))
+
+    def seen(self, text):
+        """Wall times of the lines whose message (after ``t_ms=N``) starts with ``text``."""
+        return [t for t, ln in self.lines if ln.partition(" ")[2].startswith(text)]
+
+    def close(self):
+        self.proc.terminate()
+        self.proc.wait(timeout=10)
+
+
+@pytest.fixture
+def cdev(c_device):
+    d = CDevice(c_device)
+    yield d
+    d.close()
+
+
+_SIM_N = iter(range(1000, 100000))
+
+
+def _sim_url():
+    # a fresh device per test: the seed is part of the URL that names it
+    return f"sim://brisling5?script=0&seed={next(_SIM_N)}"
+
+
+def _controller(port, plan):
+    link = Link(port)
+    link.start()
+    ctl = BenchController(link, plan)
+    ctl.wait_device(10.0)
+    return link, ctl
+
+
+SHORT = "10:30:1"  # 10 to 30 % in 1 s: about 3.4 s in all with the rests
+
+
+@pytest.fixture(params=["sim", "c"])
+def device_port(request, c_device):
+    if request.param == "sim":
+        yield request.param, _sim_url(), None
+    else:
+        d = CDevice(c_device)
+        yield request.param, d.path, d
+        d.close()
+
+
+def test_end_of_plan_stops_the_motors_and_the_device_acknowledges(device_port):
+    kind, port, dev = device_port
+    link, ctl = _controller(port, ramp_plan(SHORT))
+    try:
+        ctl.start()
+        report = ctl.join(timeout=30)
+        assert report.acknowledged and report.why == "end of the plan"
+        # set-points every 20 ms on a 20 %/s ramp: the top is met to within 0.4 %, never passed
+        assert 29.6 <= ctl.progress.max_commanded <= 30.0 and ctl.progress.sent > 100
+        _wait(lambda: ctl.status is not None and ctl.status.bench_state == fp.BenchState.DISARMED,
+              what="a status saying disarmed")
+        assert ctl.status.faults & fp.Fault.STOP_COMMAND
+        if dev is not None:
+            _wait(lambda: dev.seen("stopped: STOP_MOTORS"), what="the device's stop line")
+    finally:
+        link.close()
+
+
+def test_the_abort_key_stops_at_once(device_port):
+    kind, port, dev = device_port
+    link, ctl = _controller(port, ramp_plan("10:40:10"))
+    try:
+        ctl.start()
+        _wait(lambda: ctl.progress.max_commanded > 12.0, what="the motors commanded")
+        ctl.abort("the abort key")
+        report = ctl.join(timeout=10)
+        assert report.acknowledged and report.why == "the abort key" and ctl.progress.t_s < 8.0
+    finally:
+        link.close()
+
+
+def test_an_exception_in_the_driver_stops_the_motors(device_port, monkeypatch):
+    kind, port, dev = device_port
+    calls = {"n": 0}
+    real = bench_controller.setpoints
+
+    def failing(*a):
+        calls["n"] += 1
+        if calls["n"] > 60:
+            raise FloatingPointError("a set-point could not be computed")
+        return real(*a)
+
+    monkeypatch.setattr(bench_controller, "setpoints", failing)
+    link, ctl = _controller(port, ramp_plan("10:40:10"))
+    try:
+        ctl.start()
+        report = ctl.join(timeout=10)
+        assert report.acknowledged and report.why.startswith("host error: FloatingPointError")
+    finally:
+        link.close()
+
+
+def test_a_lost_link_aborts_and_the_device_stops_on_its_heartbeat_timeout():
+    # the simulator's port goes away for 3 s mid-sweep: the host cannot send a stop (and says so);
+    # the device, hearing nothing, stops its motors by its own heartbeat timeout
+    from simulators.urlhandler import protocol_sim
+
+    url = _sim_url() + "&fault=disconnect=2.5:3"
+    link, ctl = _controller(url, ramp_plan("10:40:10"))
+    try:
+        ctl.start()
+        report = ctl.join(timeout=20)
+        assert report.why.startswith("link lost") and not report.acknowledged
+        assert "never acknowledged" in report.text() and "kill switch" in report.text()
+        stream = next(v[0] for k, v in protocol_sim._LIVE.items() if url.split("?")[1].split("&")[1] in k)
+        dev = stream.device
+        _wait(lambda: not dev.safety.armed and not dev.applied_throttle.any(), timeout=5,
+              what="the simulated device disarmed")
+        assert dev.safety.faults & fp.Fault.HEARTBEAT_LOST
+    finally:
+        link.close()
+
+
+@pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM])
+def test_sigint_and_sigterm_stop_the_sweep_command(cdev, tmp_path, sig):
+    cap = tmp_path / "s.spinrec"
+    p = subprocess.Popen([sys.executable, "-m", "monitor", "sweep", cdev.path, "--ramp", "10:40:10", "--capture",
+                          str(cap), "--yes-spin-the-motors"], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                         text=True, cwd=ROOT)
+    _wait(lambda: cdev.seen("armed"), timeout=20, what="the device armed")
+    time.sleep(0.5)  # let it spin up: the sweep is under way (not a synchronisation)
+    p.send_signal(sig)
+    out, err = p.communicate(timeout=30)
+    assert p.returncode == 3, out + err
+    assert f"motors stopped ({signal.Signals(sig).name}); the device acknowledged" in out
+    assert cdev.seen("stopped: STOP_MOTORS")
+
+
+def test_a_host_killed_with_sigkill_leaves_the_device_to_its_heartbeat_timeout(cdev, tmp_path):
+    p = subprocess.Popen([sys.executable, "-m", "monitor", "sweep", cdev.path, "--ramp", "10:40:10", "--capture",
+                          str(tmp_path / "k.spinrec"), "--yes-spin-the-motors"], stdout=subprocess.DEVNULL,
+                         stderr=subprocess.DEVNULL, cwd=ROOT)
+    _wait(lambda: cdev.seen("armed"), timeout=20, what="the device armed")
+    time.sleep(0.5)
+    os.kill(p.pid, signal.SIGKILL)
+    killed = time.monotonic()
+    p.wait(timeout=10)
+    _wait(lambda: cdev.seen("stopped: heartbeat lost"), timeout=5, what="the device's heartbeat stop")
+    assert cdev.seen("stopped: heartbeat lost")[0] >= killed - 0.05
+    assert not cdev.seen("stopped: STOP_MOTORS")  # nobody sent one: the device did it alone
+
+
+# ----------------------------------------------------------------- nothing spins
+
+
+class QuietDevice:
+    """A device on a pty that describes itself (and, if asked, reports its status) but answers no
+    command: a stale or a deaf device."""
+
+    def __init__(self, status: bool):
+        self.master, slave = os.openpty()
+        import tty
+
+        tty.setraw(slave)
+        self.slave = slave
+        self.path = os.ttyname(slave)
+        self.status = status
+        self.stop = threading.Event()
+        self.t = threading.Thread(target=self._run, daemon=True)
+        self.t.start()
+
+    def _run(self):
+        seq = 0
+        info = fp.DeviceInfo(motor_count=4, throttle_ceiling=8000, board_id="quiet")
+        while not self.stop.is_set():
+            frames = fp.encode_frame(info, seq)
+            if self.status:
+                frames += fp.encode_frame(fp.DeviceStatus(0, 0, 0, 0, 0, 0, 0, 0, 0), seq + 1)
+            os.write(self.master, frames)
+            seq = (seq + 2) & 0xFF
+            r, _, _ = select.select([self.master], [], [], 0.1)
+            if r:
+                os.read(self.master, 4096)  # heard, ignored
+
+    def close(self):
+        self.stop.set()
+        self.t.join(2)
+        os.close(self.master)
+        os.close(self.slave)
+
+
+@pytest.mark.parametrize("status,match", [(False, "never sent a DEVICE_STATUS.*stale, nothing armed"),
+                                          (True, "no answer to ARM_BENCH within 1 s: nothing armed")])
+def test_a_stale_or_deaf_device_is_reported_plainly_and_nothing_is_armed(status, match):
+    dev = QuietDevice(status)
+    link = Link(dev.path)
+    link.start()
+    try:
+        ctl = BenchController(link, ramp_plan(SHORT))
+        ctl.wait_device(5.0)
+        with pytest.raises(BenchError, match=match):
+            ctl.start()
+        assert not ctl.running and link.nonce == 0 and ctl.progress.sent == 0
+    finally:
+        link.close()
+        dev.close()
+
+
+def test_a_refused_arm_is_reported_and_nothing_spins(c_device):
+    # the C device with a zero ceiling drives nothing: the plan is refused before arming; with a
+    # 20 % ceiling a 30 % plan is refused naming the field
+    for ceiling, match in (("0", "drives no motors of its own"), ("20", r"max_throttle: 30 % is above the "
+                                                                         r"device's declared ceiling of 20 %")):
+        d = CDevice(c_device, "--ceiling", ceiling)
+        link = Link(d.path)
+        link.start()
+        try:
+            ctl = BenchController(link, ramp_plan(SHORT))
+            ctl.wait_device(5.0)
+            with pytest.raises(PlanError, match=match):
+                ctl.start()
+            assert not d.seen("armed") and ctl.progress.sent == 0
+        finally:
+            link.close()
+            d.close()
+
+
+def test_without_confirmation_nothing_is_armed(cdev, tmp_path):
+    p = subprocess.run([sys.executable, "-m", "monitor", "sweep", cdev.path, "--ramp", SHORT, "--capture",
+                        str(tmp_path / "n.spinrec")], capture_output=True, text=True, timeout=60, cwd=ROOT,
+                       stdin=subprocess.DEVNULL)
+    assert p.returncode == 2 and "not confirmed" in p.stderr and "nothing armed" in p.stderr
+    assert "BENCH SAFETY" in p.stdout and "plan 'ramp 10:30:1'" in p.stdout  # shown before asking
+    assert not cdev.seen("armed")
+
+
+# ----------------------------------------------------------------- the command on both devices
+
+
+@pytest.mark.parametrize("solo", [False, True])
+def test_sweep_command_runs_all_motor_and_one_at_a_time_plans(device_port, tmp_path, solo):
+    kind, port, dev = device_port
+    cap = tmp_path / "run.spinrec"
+    args = [sys.executable, "-m", "monitor", "sweep", port, "--ramp", "10:30:1", "--capture", str(cap),
+            "--yes-spin-the-motors"] + (["--one-at-a-time"] if solo else [])
+    p = subprocess.run(args, capture_output=True, text=True, timeout=120, cwd=ROOT)
+    assert p.returncode == 0, p.stdout + p.stderr
+    assert "motors stopped (end of the plan); the device acknowledged" in p.stdout
+    assert "one motor at a time" in p.stdout if solo else "all motors together" in p.stdout
+    assert "(limit 30 %)" in p.stdout
+    assert "modes (" in p.stdout and "imbalance (" in p.stdout  # the capture was analysed
+    from monitor.analysis.record import load_record
+
+    rec = load_record(cap)  # the device's own report of what it drove, from the capture
+    assert rec.throttle.size and np.nanmax(rec.throttle) <= 0.30 + 1e-9
+    assert np.nanmax(rec.throttle) >= 0.29  # and the plan did reach its top
+    if solo:
+        assert np.all((rec.throttle > 0).sum(axis=1) <= 1)
+
+
+def test_the_plan_limits_hold_against_the_device_ceiling_too():
+    # a plan above the device's ceiling never runs; a plan at it never exceeds it
+    plan = ramp_plan("10:80:3", max_throttle=80)
+    link, ctl = _controller(_sim_url(), plan)
+    try:
+        ctl.start()
+        ctl.join(timeout=30)
+        assert ctl.progress.max_commanded <= 80.0 + 1e-9 and ctl.progress.limited == 0
+    finally:
+        link.close()
+    assert isinstance(plan, Plan)
