@@ -122,7 +122,8 @@ def run(args) -> int:
             ctl.start()
         except BenchError as exc:
             return _err(str(exc), 1)
-        capture.write_meta({"device": asdict(info), "sweep": {"plan": plan.name, "schedule_s": ctl.progress.duration_s}})
+        capture.write_meta({"device": asdict(info),
+                            "sweep": {"plan": plan.name, "schedule_s": ctl.progress.duration_s}})
         last_print = 0.0
         while ctl.running:
             events = session.pump(timeout=0.05)
