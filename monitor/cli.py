@@ -380,6 +380,9 @@ supply and a physical kill switch within reach. Follow local rules and the manuf
                    metavar="PERCENT", help="a lower throttle limit than the plan's (a ramp's default: its top)")
     p.add_argument("--yes-spin-the-motors", action="store_true",
                    help="confirm without a terminal (headless runs); you have cleared the bench")
+    p.add_argument("--headless", action="store_true",
+                   help="no screen: progress as lines (the default without a terminal); the sweep screen "
+                        "otherwise, with the abort key (a, space or Esc) always shown")
     p.add_argument("--device-timeout", type=DURATION_S, default=5.0, metavar="S",
                    help="wait this long for the device to describe itself (default 5 s)")
     p.add_argument("--baud", type=BAUD, default=921_600, help="baud rate (default 921600; ignored by USB CDC)")

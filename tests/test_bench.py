@@ -442,3 +442,82 @@ def test_the_plan_limits_hold_against_the_device_ceiling_too():
     finally:
         link.close()
     assert isinstance(plan, Plan)
+
+
+# ----------------------------------------------------------------- the sweep screen
+
+
+def _screen_run(tmp_path, spec="10:40:10"):
+    from monitor.bench.run import SweepRun, open_parts
+    from monitor.profile import Profile
+
+    parts = open_parts(_sim_url(), ramp_plan(spec), Profile(), str(tmp_path / "screen.spinrec"))
+    run = SweepRun(parts)
+    run.wait_device(10.0)
+    return run
+
+
+async def _until(pilot, cond, timeout=20.0):
+    """Let the app run until ``cond()`` holds (a guard against a hang, not a synchronisation)."""
+    end = time.monotonic() + timeout
+    while not cond():
+        assert time.monotonic() < end, "timed out"
+        await pilot.pause(0.05)
+
+
+@pytest.mark.parametrize("key", ["a", "space", "escape"])
+def test_the_sweep_screen_arms_only_on_the_typed_word_and_its_abort_key_stops(tmp_path, key):
+    import asyncio
+
+    from monitor.views.sweep_app import ABORT_LINE, SweepApp
+
+    run = _screen_run(tmp_path)
+
+    async def go():
+        app = SweepApp(run)
+        async with app.run_test(size=(100, 34)) as pilot:
+            assert ABORT_LINE in app.text_of("#abort") and "CAUTION" in app.text_of("#caution")
+            assert "plan 'ramp 10:40:10'" in app.text_of("#plan")
+            await pilot.click("#confirm")
+            await pilot.press(*"spin", "enter")  # not the word: nothing armed
+            assert run.ctl.progress.state == "idle" and "not confirmed" in app.text_of("#log")
+            await pilot.press(*"SPIN", "enter")
+            await _until(pilot, lambda: run.ctl.progress.max_commanded > 12.0)
+            app.tick()
+            assert "running:" in app.text_of("#where") and "set-point" in app.text_of("#motors")
+            await pilot.press(key)
+            await _until(pilot, lambda: run.ctl.report is not None)
+            app.tick()
+            assert run.ctl.report.acknowledged and run.ctl.report.why == "the abort key"
+            assert "motors stopped (the abort key)" in app.text_of("#log")
+            assert ABORT_LINE in app.text_of("#abort")  # still shown
+            await pilot.press("q")
+        assert app.return_code == 0
+
+    try:
+        asyncio.run(go())
+    finally:
+        run.close()
+
+
+def test_quitting_the_sweep_screen_mid_run_stops_the_motors(tmp_path):
+    import asyncio
+
+    from monitor.views.sweep_app import SweepApp
+
+    run = _screen_run(tmp_path)
+
+    async def go():
+        app = SweepApp(run)
+        async with app.run_test(size=(80, 24)) as pilot:
+            await pilot.click("#confirm")
+            await pilot.press(*"SPIN", "enter")
+            await _until(pilot, lambda: run.ctl.progress.max_commanded > 12.0)
+            await pilot.press("q")
+        return app.return_code
+
+    try:
+        code = asyncio.run(go())
+    finally:
+        run.close()
+    assert code == 0 and run.ctl.report.acknowledged and run.ctl.report.why == "the run was closed"

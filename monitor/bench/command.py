@@ -21,15 +21,11 @@ from dataclasses import asdict
 
 import serial
 
-from .. import __version__
-from ..capture import CaptureWriter
-from ..engine import Engine
 from ..headless import SAFETY, EventPrinter, conditions, engine_config, load_profile_arg
-from ..link import Link
 from ..profile import ProfileError
-from ..session import Session
-from .controller import BenchController, BenchError
+from .controller import BenchError
 from .plan import PlanError, load_plan, ramp_plan
+from .run import SweepRun, open_parts
 
 CONFIRM_WORD = "SPIN"
 
@@ -72,22 +68,15 @@ def run(args) -> int:
         profile = load_profile_arg(args.profile)
     except (PlanError, ProfileError) as exc:
         return _err(str(exc), 2)
-    engine = Engine(engine_config(args), profile)
-    meta = {"format": "spinrec 2", "start_time": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-            "port": args.port, "baud": args.baud, "spinrig_version": __version__, "conditions": conditions(args),
-            "profile": profile.to_toml() if profile.modes else None, "sweep_plan": plan.name}
+    if not args.headless and sys.stdin.isatty() and sys.stdout.isatty():
+        return run_screen(args, plan, profile)
     try:
-        capture = CaptureWriter(args.capture, meta)
+        parts = open_parts(args.port, plan, profile, args.capture, args.baud, engine_config(args), conditions(args))
     except OSError as exc:
         return _err(f"capture {args.capture}: cannot create: {exc.strerror or exc}", 2)
-    link = Link(args.port, args.baud, capture=capture)
-    try:
-        link.start()
-    except (serial.SerialException, OSError, ValueError) as exc:
-        capture.close()
+    except (serial.SerialException, ValueError) as exc:
         return _err(f"cannot open {args.port}: {exc}", 1)
-    session = Session(engine, link)
-    ctl = BenchController(link, plan)
+    capture, link, session, ctl = parts.capture, parts.link, parts.session, parts.controller
     printer = EventPrinter(as_json=args.json)
     old = {s: signal.getsignal(s) for s in (signal.SIGINT, signal.SIGTERM)}
     code = 0
@@ -180,3 +169,37 @@ def _analyse(args, profile) -> None:
         return
     d = a.as_dict()
     print(json.dumps({"kind": "analysis", **d}) if args.json else "\n".join(text_lines(d)))
+
+
+def run_screen(args, plan, profile) -> int:
+    """The sweep screen (monitor.views.sweep_app): the same checks, the confirmation typed on it."""
+    try:
+        parts = open_parts(args.port, plan, profile, args.capture, args.baud, engine_config(args), conditions(args))
+    except OSError as exc:
+        return _err(f"capture {args.capture}: cannot create: {exc.strerror or exc}", 2)
+    except (serial.SerialException, ValueError) as exc:
+        return _err(f"cannot open {args.port}: {exc}", 1)
+    run = SweepRun(parts)
+    try:
+        run.wait_device(args.device_timeout)
+        run.check()
+    except (BenchError, PlanError) as exc:
+        run.close()
+        return _err(f"{exc}; nothing armed" if isinstance(exc, PlanError) else str(exc), 2 if isinstance(
+            exc, PlanError) else 1)
+    from ..views.sweep_app import SweepApp
+
+    app = SweepApp(run)
+    try:
+        app.run()
+    finally:
+        run.close()
+    report = parts.controller.report
+    if report is None:
+        print("spinrig: nothing was armed")
+        return 2
+    print(report.text())
+    if not report.acknowledged:
+        return 1
+    _analyse(args, profile)
+    return 0 if report.why == "end of the plan" else 3
