@@ -216,7 +216,7 @@ def read_capture(path: str | Path) -> CaptureContents:
     n = len(data)
     while pos < n:
         end, why = _check(data, pos)
-        if end < 0 or end == 0:
+        if end <= 0:
             # look for the next chunk that checks; what lies between is damaged (or a cut tail)
             nxt = data.find(SYNC, pos + 1)
             while nxt >= 0 and _check(data, nxt)[0] <= 0:

@@ -148,7 +148,7 @@ class CrossingEvent:
         }
 
     def motor_list(self, states=("crossing", "nearing")) -> str:
-        """"M1,M2" for the motors in the given states (the lead motor alone if none)."""
+        """"M1,2" for the motors in the given states (the lead motor alone if none)."""
         ms = [m.motor for m in self.motors if m.state in states] or [self.motor]
         return "M" + ",".join(str(m) for m in ms)
 
