@@ -312,3 +312,95 @@ def test_half_power_width_interpolates_linearly_between_bins():
     # a peak at the edge of the spectrum stops there
     assert half_power_width_hz(np.array([8.0, 6.0, 1.0]), 0, 1.0) == pytest.approx(1.0 + 2.0 / 5.0)
     assert half_power_width_hz(np.array([1.0, 6.0, 8.0]), 2, 1.0) == pytest.approx(1.0 + 2.0 / 5.0)
+
+
+# ----------------------------------------------------------------- tracks, their evidence and refinement
+
+
+def test_a_track_is_found_from_the_bin_above_too():
+    # the first hit one bin up, the next ones at the bin itself: one track
+    f = StrayPeakFinder(Profile(), FREQS)
+    out = []
+    for i in range(4):
+        k = STILL + 1 if i == 0 else STILL
+        out += f.update(i * HOP * 2, _frame([(k, 12.0)]), np.full(2, 30000.0 + 1200 * i))
+    assert len(out) == 1 and out[0].hits == 4
+
+
+def test_two_peaks_three_bins_apart_in_one_frame_are_both_searched_two_apart_only_the_higher():
+    f = StrayPeakFinder(Profile(), FREQS)
+    out = _run(f, 6, [(STILL, 12.0), (STILL + 3, 14.0)])
+    assert len(out) == 2 and len(f.reported) == 2  # 300 and 312 Hz: 4 % apart, two resonances
+    g = StrayPeakFinder(Profile(), FREQS)
+    psd = _frame([(STILL, 12.0)]) + _frame([(STILL + 2, 14.0)]) - 1.0 / 3.0  # two peaks, one floor
+    t = np.arange(6) * HOP
+    got = g.update_many(t, np.stack([psd] * 6), np.stack([30000.0 + 600 * np.arange(6)] * 2, axis=1))
+    assert len(got) == 1 and got[0].hits == 4  # the lower one, 2 bins away, was never a candidate
+
+
+def test_over_the_floor_is_measured_from_the_floor_not_from_zero():
+    f = StrayPeakFinder(Profile(), FREQS)
+    t = np.arange(6) * HOP
+    psd = np.stack([_frame([(STILL, 9.5)]) * 10.0] * 6)  # the floor at +10 dB
+    (p,) = f.update_many(t, psd, np.stack([30000.0 + 600 * np.arange(6)] * 2, axis=1))
+    assert p.over_floor_db == pytest.approx(9.5, abs=1e-9)
+
+
+def test_the_axis_and_the_frequency_come_from_all_the_hits_not_the_last():
+    # three hits on pitch with the line centred 0.4 bin up, the fourth on roll, weaker, centred:
+    # the sum says pitch, and its Gaussian centre is that of the summed spectrum
+    k = np.arange(FREQS.size)
+
+    def line(centre, amp, axis):
+        psd = np.full((FREQS.size, 3), 1e-6)
+        psd[:, axis] += amp * np.exp(-0.5 * ((k - centre) / 1.1) ** 2)
+        return psd
+
+    frames = [line(STILL + 0.4, 30.0, 1)] * 3 + [line(STILL, 10.0, 0)]
+    f = StrayPeakFinder(Profile(), FREQS)
+    t = np.arange(4) * 0.2
+    (p,) = f.update_many(t, np.stack(frames), np.stack([30000.0 + 900 * np.arange(4)] * 2, axis=1))
+    assert p.axis == "pitch"
+    acc = np.sum([fr.sum(axis=1) for fr in frames], axis=0)
+    j = int(np.argmax(acc))
+    a, b, d = np.log(acc[j - 1 : j + 2])
+    assert p.freq_hz == pytest.approx((j + 0.5 * (a - d) / (a - 2 * b + d)) * BIN, abs=1e-9)
+
+
+def test_the_speed_range_is_the_lowest_and_highest_mean_speed_seen():
+    f = StrayPeakFinder(Profile(), FREQS)
+    (p,) = _run(f, 4, [(STILL, 12.0)], rpm0=33000.0, rpm_step=-900.0)
+    assert (p.rpm_low, p.rpm_high) == (30300.0, 33000.0)
+
+
+def test_a_reported_track_outlives_a_long_silence():
+    f = StrayPeakFinder(Profile(), FREQS)
+    assert len(_run(f, 4, [(STILL, 12.0)])) == 1
+    assert f.update(5.0, _frame(), np.full(2, 30000.0)) == []  # a search without it, 4 s later
+    assert _run(f, 6, [(STILL, 12.0)], t0=10.0) == []
+    assert f.reported[0].hits == 4  # the same track: nothing folded in again
+
+
+def test_a_given_speed_trend_widens_the_exclusion_in_the_search():
+    # order 1 from 26 to 42 Hz under the peak: outside 3 bins + 3 % of it; with a trend of
+    # 30000 RPM/s (as given: the finder takes the trend it is told) the order moves 64 Hz in half
+    # a window, and the peak is inside its reach in every frame
+    rpm = np.linspace(60.0 * (STILL * BIN - 26.0), 60.0 * (STILL * BIN - 26.0) * 0.94, 10)
+    t = np.arange(10) * HOP
+    psd = np.stack([_frame([(STILL, 12.0)])] * 10)
+    plain = StrayPeakFinder(Profile(), FREQS).update_many(t, psd, np.stack([rpm] * 2, axis=1))
+    trend = StrayPeakFinder(Profile(), FREQS).update_many(t, psd, np.stack([rpm] * 2, axis=1),
+                                                          np.full((10, 2), -30000.0))
+    assert len(plain) == 1 and trend == []
+
+
+def test_a_refined_report_that_lands_on_another_report_takes_it_in():
+    # A at 300 Hz and B at 316 Hz (5.3 % apart): two reports. C at 308 Hz, strong, is the same
+    # resonance as A; A's estimate moves up to C, now within 3 % of B: A takes B in
+    f = StrayPeakFinder(Profile(), FREQS)
+    assert len(_run(f, 4, [(STILL, 12.0)])) == 1
+    assert len(_run(f, 4, [(STILL + 4, 12.0)], t0=10.0)) == 1
+    assert _run(f, 4, [(STILL + 2, 20.0)], t0=20.0) == []
+    assert len(f.reported) == 1
+    r = f.reported[0]
+    assert r.hits == 12 and abs(r.freq_hz - (STILL + 2) * BIN) < BIN
