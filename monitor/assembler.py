@@ -365,11 +365,10 @@ class _DriftFit:
         h = self.hull
         if self.n < 3 or len(h) < 2:
             return None
+        # the edge spanning the mean host time; the last corner is the newest bin, never before
+        # the mean, so an edge always does
         xm = self.sx / self.n
-        for (x1, y1), (x2, y2) in zip(h, h[1:], strict=False):
-            if x2 >= xm:
-                return (y2 - y1) / (x2 - x1) * 1e6
-        (x1, y1), (x2, y2) = h[-2], h[-1]
+        (x1, y1), (x2, y2) = next((a, b) for a, b in zip(h, h[1:], strict=False) if b[0] >= xm)
         return (y2 - y1) / (x2 - x1) * 1e6
 
 

@@ -252,3 +252,30 @@ def test_estimate_trend_keeps_estimates_up_to_its_span_and_skips_missing_ones():
     assert sl == pytest.approx(ref.slope)
     tr.clear()
     assert tr.add(1.0, 900.0)[0] == 900.0 and np.isnan(tr.add(1.1, 950.0)[1])
+
+
+def test_session_time_over_a_reboot_uses_the_host_time_that_passed_or_none():
+    before = b"".join(_frames(_blocks(5, seq0=1000)))
+    after = fp.encode_frame(fp.DeviceInfo(boot_id=7, gyro_rate_mhz=8_000_000), 9) + b"".join(
+        _frames(_blocks(3, seq0=0, t_us0=5_000_000), seq0=10))
+    for hosts, gap_s in (((10.0, 10.5), 0.5), ((None, None), 0.0)):
+        asm, out = _run((before, hosts[0]), (after, hosts[1]))
+        s = _samples(out)
+        assert asm.stats.reboots == 1 and s[-1].t0_s == pytest.approx(80 / FS + gap_s)
+
+
+def test_a_motor_window_with_no_readings_is_unknown_in_every_field():
+    from monitor.assembler import RpmTrack
+
+    tr = RpmTrack(2, capacity=100)
+    tr.add(MotorUpdate(np.array([1.0, 1.1]), np.array([[100.0, 200.0], [110.0, 210.0]]),
+                       np.array([[0.1, 0.2], [0.1, 0.2]]), np.ones((2, 2), bool)))
+    mean, latest, thr, ok = tr.window(np.array([0.0, 1.0, 1.0]), np.array([0.5, 1.2, 1.1]))
+    assert np.isnan(mean[0]).all() and np.isnan(latest[0]).all() and np.isnan(thr[0]).all() and not ok[0].any()
+    assert mean.dtype == latest.dtype == thr.dtype == np.float64 and ok.dtype == bool
+    assert mean[1].tolist() == [105.0, 205.0] and latest[1].tolist() == [110.0, 210.0]
+    assert thr[1].tolist() == pytest.approx([0.1, 0.2]) and ok[1].all()
+    assert latest[2].tolist() == [100.0, 200.0]  # the reading at 1.1 s itself is left out
+    empty = RpmTrack(1)
+    m, la, th, k = empty.window(np.array([0.0]), np.array([1.0]))
+    assert np.isnan(m).all() and np.isnan(la).all() and np.isnan(th).all() and not k.any()
