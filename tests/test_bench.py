@@ -521,3 +521,37 @@ def test_quitting_the_sweep_screen_mid_run_stops_the_motors(tmp_path):
     finally:
         run.close()
     assert code == 0 and run.ctl.report.acknowledged and run.ctl.report.why == "the run was closed"
+
+
+# ----------------------------------------------------------------- the command line
+
+
+def test_sweep_help_says_what_exists():
+    p = subprocess.run([sys.executable, "-m", "monitor", "sweep", "--help"], capture_output=True, text=True,
+                       timeout=60, cwd=ROOT)
+    assert p.returncode == 0
+    text = " ".join(p.stdout.split())
+    for words in ("type SPIN", "--yes-spin-the-motors", "[[piece]]", "max_throttle", "slew_percent_per_s",
+                  "heartbeat timeout stops them", "Exit 0 plan done, 3 stopped early", "kill switch"):
+        assert words in text, words
+
+
+@pytest.mark.parametrize("args,match", [
+    (["--ramp", "10:30:5"], "the following arguments are required: --capture"),
+    (["--ramp", "10:30:5", "--plan", "x.toml", "--capture", "c.spinrec"], "not allowed with argument"),
+    (["--ramp", "10:90:1", "--capture", "c.spinrec"], "--ramp.seconds: 10 -> 90 % in 1 s is 80 %/s"),
+])
+def test_bad_sweep_options_are_one_line_and_nothing_is_opened(tmp_path, args, match):
+    p = subprocess.run([sys.executable, "-m", "monitor", "sweep", "sim://brisling5?script=0", *args],
+                       capture_output=True, text=True, timeout=60, cwd=tmp_path)
+    assert p.returncode == 2 and match in p.stderr
+    assert not (tmp_path / "c.spinrec").exists()  # refused before the capture or the port was opened
+
+
+def test_a_bad_plan_file_is_refused_before_the_port_is_opened(tmp_path):
+    plan = tmp_path / "p.toml"
+    plan.write_text('[plan]\nmax_throttle = 40\n[[piece]]\nkind = "hold"\nlevel = 55\nseconds = 3\n')
+    p = subprocess.run([sys.executable, "-m", "monitor", "sweep", "/dev/nonexistent-port", "--plan", str(plan),
+                        "--capture", str(tmp_path / "c.spinrec")], capture_output=True, text=True, timeout=60)
+    assert p.returncode == 2
+    assert p.stderr.strip() == f"spinrig: {plan}: piece 1.level: 55 % is above plan.max_throttle (40 %)"
