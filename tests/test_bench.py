@@ -363,7 +363,7 @@ class QuietDevice:
 
 
 @pytest.mark.parametrize("status,match", [(False, "never sent a DEVICE_STATUS.*stale, nothing armed"),
-                                          (True, "no answer to ARM_BENCH within 1 s: nothing armed")])
+                                          (True, r"no answer to ARM_BENCH within 1 s \(3 tries\): nothing armed")])
 def test_a_stale_or_deaf_device_is_reported_plainly_and_nothing_is_armed(status, match):
     dev = QuietDevice(status)
     link = Link(dev.path)
@@ -555,3 +555,96 @@ def test_a_bad_plan_file_is_refused_before_the_port_is_opened(tmp_path):
                         "--capture", str(tmp_path / "c.spinrec")], capture_output=True, text=True, timeout=60)
     assert p.returncode == 2
     assert p.stderr.strip() == f"spinrig: {plan}: piece 1.level: 55 % is above plan.max_throttle (40 %)"
+
+
+# ----------------------------------------------------------------- abort rules
+
+
+def _plan_with(abort: dict, spec="10:40:10"):
+    lo, hi, sec = spec.split(":")
+    return plan_from_dict({"plan": {"max_throttle": float(hi)},
+                           "piece": [{"kind": "ramp", "from": float(lo), "to": float(hi), "seconds": float(sec)}],
+                           "abort": abort}, "abort.toml")
+
+
+def test_a_gyro_level_over_its_limit_aborts():
+    link, ctl = _controller(_sim_url(), _plan_with({"gyro_rms_dps": 0.5}))
+    try:
+        ctl.start()
+        report = ctl.join(timeout=20)
+        assert report.acknowledged and report.why.startswith("gyro ") and "over the limit of 0.5 deg/s" in report.why
+    finally:
+        link.close()
+
+
+def test_motor_telemetry_lost_while_commanded_aborts(c_device):
+    d = CDevice(c_device, "--no-telemetry")
+    link, ctl = _controller(d.path, _plan_with({"telemetry_lost_s": 0.5}))
+    try:
+        ctl.start()
+        report = ctl.join(timeout=20)
+        assert report.acknowledged and report.why == "motor M1 sent no live telemetry for 0.5 s while commanded"
+        assert ctl.progress.t_s < 3.0  # within the first second of spinning
+    finally:
+        link.close()
+        d.close()
+
+
+def test_a_link_with_many_bad_frames_aborts():
+    link, ctl = _controller(_sim_url() + "&fault=corrupt=0.0005", _plan_with({"link_errors_per_s": 5}))
+    try:
+        ctl.start()
+        report = ctl.join(timeout=20)
+        assert "bad frames a second on the link, over the limit of 5" in report.why
+    finally:
+        link.close()
+
+
+def test_a_crossing_stronger_than_its_limit_aborts_and_a_weaker_one_does_not():
+    from monitor.crossing import CrossingEvent
+
+    def ev(over):
+        return CrossingEvent(1.0, "crossing", "nearing", "arm", 200.0, 1.0, "1x", 1, 12000.0, 200.0, -40.0 + over,
+                             -40.0, (1, 2), (1, 2))
+
+    link, ctl = _controller(_sim_url(), _plan_with({"crossing_over_floor_db": 25}))
+    try:
+        ctl.start()
+        _wait(lambda: ctl.progress.max_commanded > 11.0, what="spinning")
+        ctl.observe_events([ev(24.9)])
+        assert ctl.running
+        ctl.observe_events([ev(25.0)])
+        report = ctl.join(timeout=10)
+        assert report.acknowledged and report.why.startswith("1x crossing arm with the response +25.0 dB")
+    finally:
+        link.close()
+
+
+def test_the_device_itself_refuses_to_arm_when_it_drives_nothing(c_device):
+    # past the host's own check (which refuses first): the device answers UNSUPPORTED
+    d = CDevice(c_device, "--ceiling", "0")
+    link, ctl = _controller(d.path, ramp_plan(SHORT))
+    try:
+        with pytest.raises(BenchError, match="the device refused to arm: UNSUPPORTED; nothing spins"):
+            ctl.arm()
+        assert link.nonce == 0 and not d.seen("armed")
+    finally:
+        link.close()
+        d.close()
+
+
+@pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM])
+def test_sigint_and_sigterm_stop_the_sweep_command_on_the_simulator(tmp_path, sig):
+    # the simulator lives in the host's process: the stop is acknowledged before the host exits
+    p = subprocess.Popen([sys.executable, "-m", "monitor", "sweep", _sim_url(), "--ramp", "10:40:10", "--capture",
+                          str(tmp_path / "s.spinrec"), "--yes-spin-the-motors", "--headless"],
+                         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT)
+    lines = []
+    for line in p.stdout:  # the progress lines: wait until the motors are commanded
+        lines.append(line)
+        if " / " in line and "%" in line and float(line.split("M1")[1].split("%")[0]) > 11.0:
+            break
+    p.send_signal(sig)
+    out, err = p.communicate(timeout=30)
+    assert p.returncode == 3, "".join(lines) + out + err
+    assert f"motors stopped ({signal.Signals(sig).name}); the device acknowledged" in out

@@ -43,6 +43,7 @@ from .plan import Plan, setpoints
 RATE_HZ = 50.0  #: set-points a second (SET_THROTTLE), well inside a 500 ms heartbeat timeout
 ANSWER_S = 1.0  #: how long a command's answer may take
 STOP_TRIES = 3
+ARM_TRIES = 3
 ERROR_WINDOW_S = 1.0
 STALE_S = 1.0  #: a device with no DEVICE_STATUS for this long (5 a second are due) is not armed
 
@@ -244,12 +245,18 @@ class BenchController:
         nonce = 0
         while nonce == 0:
             nonce = secrets.randbits(32)
-        sent = time.monotonic()
-        seq = self.link.send_seq(fp.ArmBench(nonce))
-        ans = self._answer(seq, sent)
+        ans = None
+        for _ in range(ARM_TRIES):  # the same nonce again is harmless (SPEC 6): a lossy link may drop one
+            sent = time.monotonic()
+            seq = self.link.send_seq(fp.ArmBench(nonce))
+            ans = self._answer(seq, sent, ANSWER_S / ARM_TRIES)
+            if ans is not None:
+                break
         if ans is None:
             self.progress.state = "stopped"
-            raise BenchError(f"{self.link.port_name}: no answer to ARM_BENCH within {ANSWER_S:g} s: nothing armed")
+            self.link.send(fp.StopMotors(int(fp.StopReason.HOST_ERROR)))  # in case it armed unheard
+            raise BenchError(f"{self.link.port_name}: no answer to ARM_BENCH within {ANSWER_S:g} s "
+                             f"({ARM_TRIES} tries): nothing armed")
         if ans.result != fp.Outcome.OK or ans.detail != nonce:
             self.progress.state = "stopped"
             why = fp.Outcome(ans.result).name if ans.result in fp.Outcome._value2member_map_ else str(ans.result)

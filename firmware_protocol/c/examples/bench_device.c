@@ -9,7 +9,9 @@
  * GYRO_BLOCK, MOTOR_STATE and DEVICE_STATUS. The hardware layer (the hal_* functions) is what an
  * author replaces: the clock, the serial port, the gyro and the motor outputs and telemetry.
  *
- *   bench_device [--pty] [--seconds N] [--motors N] [--ceiling PERCENT] [--boot-id N]
+ *   bench_device [--pty] [--seconds N] [--motors N] [--ceiling PERCENT] [--boot-id N] [--no-telemetry]
+ *
+ * --no-telemetry: a board whose speed controllers send no telemetry (MOTOR_STATE flags 0).
  *
  * Standard error gets one line per bench event ("t_ms=... armed", "t_ms=... stopped: ..."), so a
  * test or a person can see what the device did. SIGTERM and SIGINT stop the motors and exit.
@@ -233,7 +235,7 @@ int main(int argc, char **argv)
     uint16_t host_ok = 0, host_bad = 0, ceiling = 8000;
     uint8_t motors = 4, in_block = 0, streaming = 0, was_armed = 0;
     double seconds = 0.0;
-    int use_pty = 0, hold = -1, i;
+    int use_pty = 0, hold = -1, telemetry = 1, i;
     struct sigaction sa;
 
     for (i = 1; i < argc; i++) {
@@ -245,11 +247,13 @@ int main(int argc, char **argv)
             motors = (uint8_t)atoi(argv[++i]);
         } else if (strcmp(argv[i], "--ceiling") == 0 && i + 1 < argc) {
             ceiling = (uint16_t)(atof(argv[++i]) * 100.0);
+        } else if (strcmp(argv[i], "--no-telemetry") == 0) {
+            telemetry = 0;
         } else if (strcmp(argv[i], "--boot-id") == 0 && i + 1 < argc) {
             boot_id = (uint32_t)strtoul(argv[++i], NULL, 0);
         } else {
-            fprintf(stderr, "usage: %s [--pty] [--seconds N] [--motors N] [--ceiling PERCENT] [--boot-id N]\n",
-                    argv[0]);
+            fprintf(stderr, "usage: %s [--pty] [--seconds N] [--motors N] [--ceiling PERCENT] [--boot-id N] "
+                    "[--no-telemetry]\n", argv[0]);
             return 2;
         }
     }
@@ -376,7 +380,7 @@ int main(int argc, char **argv)
             for (m = 0; m < motors; m++) {
                 ms.motors[m].erpm = hal_motor_erpm(m);
                 ms.motors[m].throttle = bench.throttle[m];
-                ms.motors[m].flags = 1;
+                ms.motors[m].flags = (uint8_t)telemetry;
             }
             motor_done++;
             if (streaming) {
