@@ -192,28 +192,28 @@ def test_the_writer_flushes_every_half_second_and_syncs_every_two(tmp_path, monk
     synced = []
     real_fsync = os.fsync
     monkeypatch.setattr(capture.os, "fsync", lambda fd: (synced.append(clk.t), real_fsync(fd)))
-    clk = Clock(0.0)
+    clk = Clock(1000.0)
     f = tmp_path / "t.spinrec"
     w = CaptureWriter(f, {}, clock=clk)
-    assert synced == [0.0]  # the header is on disk at once
+    assert synced == [1000.0]  # the header is on disk at once
     size0 = f.stat().st_size
-    for t in (0.1, 0.49):
+    for t in (1000.1, 1000.49):
         clk.t = t
         w.write_data(b"a" * 10)
     assert f.stat().st_size == size0  # held in the buffer
-    clk.t = 0.5
+    clk.t = 1000.5
     w.write_data(b"b" * 10)
-    assert f.stat().st_size == size0 + 3 * (16 + 10 + 4) and synced == [0.0]
-    for t in (1.0, 1.5, 1.99):
+    assert f.stat().st_size == size0 + 3 * (16 + 10 + 4) and synced == [1000.0]
+    for t in (1001.0, 1001.5, 1001.99):
         clk.t = t
         w.write_data(b"c")
-    assert synced == [0.0]
-    clk.t = 2.0
+    assert synced == [1000.0]
+    clk.t = 1002.0
     w.tick()  # a flush 2 s after the last sync also syncs
-    assert synced == [0.0, 2.0]
-    clk.t = 2.2
+    assert synced == [1000.0, 1002.0]
+    clk.t = 1002.2
     w.close({})
-    assert synced == [0.0, 2.0, 2.2]  # a clean end is synced
+    assert synced == [1000.0, 1002.0, 1002.2]  # a clean end is synced
 
 
 def test_a_fast_source_is_written_in_64_kib_pieces(tmp_path):
@@ -247,8 +247,88 @@ def test_a_full_disk_stops_the_capture_with_one_line_and_leaves_it_readable(tmp_
                        preexec_fn=limit, cwd=ROOT)
     assert p.returncode == 0, p.stderr
     error, written = p.stdout.strip().splitlines()
-    assert error.startswith(f"capture {f}: write failed after {written} bytes") and "capture stopped" in error
+    assert error.startswith(f"capture {f}: write failed after {written} bytes (File too large); capture stopped")
     c = read_capture(f)
     assert c.meta == {"port": "x"} and not c.ended_cleanly
     assert c.data_bytes == 1000 * sum(1 for ch in c.chunks if ch.kind == "D") > 0
     assert f.stat().st_size <= 200_000 and c.damaged == []
+
+
+# ----------------------------------------------------------------- the writer's edges
+
+
+def test_chunks_carry_the_time_they_are_given_and_a_given_time_drives_the_flush(tmp_path):
+    clk = Clock(100.0)
+    f = tmp_path / "given.spinrec"
+    w = CaptureWriter(f, {}, clock=clk)
+    assert w.has_device is False
+    w.write_meta({"later": 1}, t=100.1)
+    w.write_device(b"\x01", t=100.2)
+    assert w.has_device is True
+    w.write_gap({"why": "x"}, t=100.3)
+    size = f.stat().st_size
+    w.write_data(b"d", t=101.0)  # the clock still reads 100.0: the given time is what counts
+    assert f.stat().st_size > size
+    w.close({})
+    times = [t for _, _, t, _, _ in _parse(f.read_bytes())]
+    # whole nanoseconds, truncated: 100.1 - 100.0 is 0.0999999... s in binary floating point
+    assert [round(t / 1e6) for t in times[1:5]] == [100, 200, 300, 1000]
+
+
+def test_json_chunks_are_sorted_and_take_any_value_as_text(tmp_path):
+    f = tmp_path / "j.spinrec"
+    w = CaptureWriter(f, {"b": 1, "a": Path("/x")}, clock=Clock())
+    w.write_gap({"z": 1, "y": 2})
+    w.close({"n": 2, "m": Path("/y")})
+    chunks = _parse(f.read_bytes())
+    assert [p for _, _, _, p, _ in chunks] == [b'{"a": "/x", "b": 1}', b'{"y": 2, "z": 1}', b'{"m": "/y", "n": 2}']
+
+
+def test_a_buffer_of_exactly_64_kib_is_written_without_a_sync(tmp_path, monkeypatch):
+    synced = []
+    monkeypatch.setattr(capture.os, "fsync", lambda fd: synced.append(fd))
+    f = tmp_path / "exact.spinrec"
+    w = CaptureWriter(f, {}, clock=Clock())
+    size0, n_sync = f.stat().st_size, len(synced)
+    w.write_data(b"z" * (64 * 1024 - 20))  # 16 bytes of header and 4 of CRC: exactly 64 KiB
+    assert f.stat().st_size == size0 + 64 * 1024 and len(synced) == n_sync
+
+
+def test_a_closed_writer_is_inactive_and_flushing_it_again_is_harmless(tmp_path):
+    w = CaptureWriter(tmp_path / "closed.spinrec", {}, clock=Clock())
+    assert w.active
+    w.close({})
+    assert not w.active
+    w.flush()
+    w.flush(sync=True)
+    w.write_data(b"after")  # ignored
+    w.close({})
+    assert read_capture(tmp_path / "closed.spinrec").data_bytes == 0
+
+
+def test_an_unreadable_file_names_the_reason(tmp_path):
+    with pytest.raises(CaptureError) as exc:
+        read_capture(tmp_path / "gone.spinrec")
+    assert str(exc.value) == f"{tmp_path / 'gone.spinrec'}: cannot read: No such file or directory"
+
+
+# ----------------------------------------------------------------- the reader's edges
+
+
+def test_nothing_but_damage_after_the_magic_is_a_cut_tail(tmp_path):
+    c = read_capture(_file(tmp_path, b"\x00" * 40))
+    assert (c.cut_bytes, c.cut_at, c.cut_reason) == (40, 16, "no chunk sync") and c.damaged == []
+
+
+def test_damage_and_a_cut_tail_are_one_line(tmp_path):
+    a, d = _chunk(b"M", b'{"a": 1}'), _chunk(b"D", b"x")
+    f = _file(tmp_path, a, b"\x01" * 30, d, d[:10])
+    msg = read_capture(f).cut_message()
+    assert msg.startswith(f"{f}: 1 damaged range(s) skipped, 30 bytes") and "; incomplete chunk header at byte" in msg
+
+
+def test_after_a_false_sync_the_first_good_chunk_is_taken_not_a_later_one(tmp_path):
+    a, d1, d2 = _chunk(b"M", b'{"a": 1}'), _chunk(b"D", b"first"), _chunk(b"D", b"second")
+    junk = b"\x11" * 7 + b"\xd5\x52" + b"D\x00" + b"\x05\x00\x00\x00" + b"\x00" * 8 + b"hello" + b"\x00" * 4
+    c = read_capture(_file(tmp_path, a, junk, d1, d2))
+    assert [ch.payload for ch in c.chunks if ch.kind == "D"] == [b"first", b"second"]

@@ -306,3 +306,41 @@ def test_a_sync_right_after_the_damage_start_is_found(tmp_path):
     c = read_capture(f)
     at = len(MAGIC) + len(a)
     assert c.damaged == [(at, at + 1, "no chunk sync")] and c.chunks[-1].payload == b"next"
+
+
+# ----------------------------------------------------------------- spectra settings and the STFT's counters
+
+
+def test_spectrum_settings_at_their_limits():
+    from monitor.spectra import RollingSTFT, SpectrumConfig
+
+    SpectrumConfig(fs_hz=100.0, window_s=0.16)  # 16 samples: the least
+    SpectrumConfig(fs_hz=0.5, window_s=32.0)  # any positive rate
+    SpectrumConfig(fs_hz=8000.0, overlap=0.95)
+    with pytest.raises(ValueError, match=r"^window_s=0\.15 gives 15 samples at 100\.0 Hz; need 16$"):
+        SpectrumConfig(fs_hz=100.0, window_s=0.15)
+    with pytest.raises(ValueError, match=r"^fs_hz=0\.0 must be positive$"):
+        SpectrumConfig(fs_hz=0.0)
+    with pytest.raises(ValueError, match=r"^overlap=0\.96 must be between 0 and 0\.95$"):
+        SpectrumConfig(fs_hz=8000.0, overlap=0.96)
+    with pytest.raises(ValueError, match=r"^window='kaiser' not in \('hann', "):
+        SpectrumConfig(fs_hz=8000.0, window="kaiser")
+    st = RollingSTFT(SpectrumConfig(fs_hz=8000.0))
+    assert st.segment == 0
+    st.push(np.zeros((1000, 3)))
+    st.push(np.zeros((500, 3)))
+    assert st.samples == 1500
+    st.reset()
+    st.reset()
+    assert st.segment == 2 and st.samples == 0
+
+
+def test_the_speed_is_refined_on_the_strongest_weighted_order():
+    # 1x at 100 Hz (10 dB) and 6x a bin off its place (602 Hz, 12 dB, weight 0.6): refined on the
+    # 1x, 6000 RPM; on the 6x it would be 6020
+    from monitor.rpm_estimate import RpmEstimator
+
+    freqs = np.arange(0, 2001.0, 2.0)
+    p = np.ones(freqs.size)
+    p[50], p[301] = 10.0, 10 ** 1.2
+    assert RpmEstimator(freqs, blades=3).estimate(p) == pytest.approx(6000.0, rel=1e-6)
