@@ -648,3 +648,69 @@ def test_sigint_and_sigterm_stop_the_sweep_command_on_the_simulator(tmp_path, si
     out, err = p.communicate(timeout=30)
     assert p.returncode == 3, "".join(lines) + out + err
     assert f"motors stopped ({signal.Signals(sig).name}); the device acknowledged" in out
+
+
+# ----------------------------------------------------------------- spinrig sim as its own process
+
+
+class SimProcess:
+    """``spinrig sim SCENARIO --no-script`` on its own pty: the host drives its motors."""
+
+    def __init__(self, scenario="brisling5", seed=0):
+        self.proc = subprocess.Popen([sys.executable, "-m", "monitor", "sim", scenario, "--no-script", "--seed",
+                                      str(seed)], stdout=subprocess.PIPE, stderr=subprocess.DEVNULL,
+                                     stdin=subprocess.DEVNULL, text=True, cwd=ROOT)
+        first = self.proc.stdout.readline()
+        assert " on /dev/" in first, first
+        self.path = first.split(" on ")[1].split()[0]
+
+    def close(self):
+        self.proc.terminate()
+        self.proc.wait(timeout=10)
+
+
+@pytest.mark.parametrize("solo", [False, True])
+def test_sweep_command_drives_spinrig_sim_in_its_own_process(tmp_path, solo):
+    sim = SimProcess(seed=3 + solo)
+    try:
+        cap = tmp_path / "sim.spinrec"
+        p = subprocess.run([sys.executable, "-m", "monitor", "sweep", sim.path, "--ramp", "10:30:1", "--capture",
+                            str(cap), "--yes-spin-the-motors"] + (["--one-at-a-time"] if solo else []),
+                           capture_output=True, text=True, timeout=120, cwd=ROOT)
+        assert p.returncode == 0, p.stdout + p.stderr
+        assert "motors stopped (end of the plan); the device acknowledged" in p.stdout
+        from monitor.analysis.record import load_record
+
+        rec = load_record(cap)
+        assert 0.29 <= np.nanmax(rec.throttle) <= 0.30 + 1e-9
+        if solo:
+            assert np.all((rec.throttle > 0).sum(axis=1) <= 1)
+    finally:
+        sim.close()
+
+
+def test_a_host_killed_with_sigkill_leaves_spinrig_sim_to_its_heartbeat_timeout(tmp_path):
+    sim = SimProcess(seed=7)
+    try:
+        p = subprocess.Popen([sys.executable, "-m", "monitor", "sweep", sim.path, "--ramp", "10:40:10", "--capture",
+                              str(tmp_path / "k.spinrec"), "--yes-spin-the-motors", "--headless"],
+                             stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True, cwd=ROOT)
+        for line in p.stdout:  # progress lines: wait until the motors are commanded
+            if " / " in line and "%" in line and float(line.split("M1")[1].split("%")[0]) > 11.0:
+                break
+        os.kill(p.pid, signal.SIGKILL)
+        p.wait(timeout=10)
+        # a second host looks: the device disarmed itself, with the heartbeat fault latched
+        link = Link(sim.path)
+        link.start()
+        ctl = BenchController(link, ramp_plan(SHORT))
+        try:
+            _wait(lambda: ctl.status is not None and ctl.status.faults & fp.Fault.HEARTBEAT_LOST, timeout=10,
+                  what="a status with the heartbeat fault")
+            assert ctl.status.bench_state == fp.BenchState.DISARMED
+            _wait(lambda: ctl.progress.rpm.size and ctl.progress.rpm.max() < 100.0, timeout=10,
+                  what="the motors spun down")
+        finally:
+            link.close()
+    finally:
+        sim.close()
