@@ -714,3 +714,35 @@ def test_a_host_killed_with_sigkill_leaves_spinrig_sim_to_its_heartbeat_timeout(
             link.close()
     finally:
         sim.close()
+
+
+def test_a_host_that_exits_mid_sweep_stops_the_motors_on_its_way_out(tmp_path):
+    # the program ends (sys.exit from the main thread) while the driver is running: the atexit
+    # handler stops the motors and the device latches STOP_COMMAND, not HEARTBEAT_LOST
+    sim = SimProcess(seed=11)
+    script = tmp_path / "leave.py"
+    script.write_text(
+        "import sys, time\n"
+        "from monitor.link import Link\n"
+        "from monitor.bench.controller import BenchController\n"
+        "from monitor.bench.plan import ramp_plan\n"
+        f"link = Link({sim.path!r}); link.start()\n"
+        "ctl = BenchController(link, ramp_plan('10:40:10'))\n"
+        "ctl.wait_device(10); ctl.start()\n"
+        "while ctl.progress.max_commanded < 12.0: time.sleep(0.01)\n"
+        "print('leaving', flush=True)\n"
+        "sys.exit(0)\n")
+    try:
+        p = subprocess.run([sys.executable, str(script)], capture_output=True, text=True, timeout=60, cwd=ROOT)
+        assert p.returncode == 0 and "leaving" in p.stdout, p.stderr
+        link = Link(sim.path)
+        link.start()
+        ctl = BenchController(link, ramp_plan(SHORT))
+        try:
+            _wait(lambda: ctl.status is not None, timeout=10, what="a status")
+            assert ctl.status.bench_state == fp.BenchState.DISARMED
+            assert ctl.status.faults & fp.Fault.STOP_COMMAND and not ctl.status.faults & fp.Fault.HEARTBEAT_LOST
+        finally:
+            link.close()
+    finally:
+        sim.close()
