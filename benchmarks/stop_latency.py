@@ -8,8 +8,9 @@ that baseline:
 
 - end of plan, abort key, an exception in the driver: from the moment the stop was decided to the
   device's acknowledgement (host clock);
-- SIGTERM and SIGINT to ``spinrig sweep`` (C device): from the signal to the device's own
-  "stopped" line (wall clock);
+- SIGTERM and SIGINT to ``spinrig sweep``: on the C device from the signal to the device's own
+  "stopped" line (wall clock); on ``spinrig sim`` (its own process) as the host reports it, from
+  the stop decided to the acknowledgement;
 - ``kill -9`` of the host (C device): from the kill to the device's "heartbeat lost" line;
 - a lost link (simulator): from the last host frame the device heard to its heartbeat stop, on
   the simulated device's own clock (it is stepped when its port is read, so during an outage its
@@ -140,6 +141,29 @@ def subprocess_stop(dev: CDevice, how: int) -> float:
         return dev.first(want, t) - t
 
 
+def sim_signal(how: int) -> float:
+    """SIGTERM or SIGINT to ``spinrig sweep`` driving ``spinrig sim`` in its own process: the stop's
+    latency as the host reports it (stop decided to the device's acknowledgement)."""
+    sim = subprocess.Popen([sys.executable, "-m", "monitor", "sim", "brisling5", "--no-script", "--seed",
+                            str(next(_N))], stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True, cwd=ROOT)
+    path = sim.stdout.readline().split(" on ")[1].split()[0]
+    try:
+        with tempfile.TemporaryDirectory() as d:
+            p = subprocess.Popen([sys.executable, "-m", "monitor", "sweep", path, "--ramp", "10:40:10", "--capture",
+                                  str(Path(d) / "s.spinrec"), "--yes-spin-the-motors", "--headless"],
+                                 stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True, cwd=ROOT)
+            for line in p.stdout:
+                if " / " in line and "%" in line and float(line.split("M1")[1].split("%")[0]) > 11.0:
+                    break
+            os.kill(p.pid, how)
+            out = p.communicate(timeout=30)[0]
+        ms = out.split("the device acknowledged in ")[1].split(" ms")[0]
+        return float(ms) / 1000.0
+    finally:
+        sim.terminate()
+        sim.wait(10)
+
+
 def lost_link() -> float:
     """The simulator steps its device when the port is read, so during the outage its clock waits
     and catches up when the port is back: the latency is measured on the device's own clock (from
@@ -188,6 +212,8 @@ def main() -> int:
             rows.append(("C device", name, [subprocess_stop(dev, sig) for _ in range(n)], base_c))
     finally:
         dev.close()
+    for name, sig in (("SIGTERM", signal.SIGTERM), ("SIGINT", signal.SIGINT)):
+        rows.append(("simulator", name, [sim_signal(sig) for _ in range(n)], base_sim))
     rows.append(("simulator", "lost link", [lost_link() for _ in range(n)], base_sim))
     print(f"baseline round trip (REQUEST_INFO -> COMMAND_OUTCOME): simulator {base_sim * 1e3:.1f} ms, "
           f"C device {base_c * 1e3:.1f} ms")
