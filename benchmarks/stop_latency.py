@@ -11,7 +11,8 @@ that baseline:
 - SIGTERM and SIGINT to ``spinrig sweep``: on the C device from the signal to the device's own
   "stopped" line (wall clock); on ``spinrig sim`` (its own process) as the host reports it, from
   the stop decided to the acknowledgement;
-- ``kill -9`` of the host (C device): from the kill to the device's "heartbeat lost" line;
+- ``kill -9`` of the host: from the kill to the device's own "heartbeat lost" line (the C device,
+  and ``spinrig sim`` in its own process);
 - a lost link (simulator): from the last host frame the device heard to its heartbeat stop, on
   the simulated device's own clock (it is stepped when its port is read, so during an outage its
   clock waits for the port to come back).
@@ -164,6 +165,33 @@ def sim_signal(how: int) -> float:
         sim.wait(10)
 
 
+def sim_kill() -> float:
+    """``kill -9`` of the host driving ``spinrig sim`` in its own process: from the kill to the
+    simulator's own "stopped: heartbeat lost" line (wall clock; the pty server steps the device in
+    real time whether or not anybody reads)."""
+    sim = subprocess.Popen([sys.executable, "-m", "monitor", "sim", "brisling5", "--no-script", "--seed",
+                            str(next(_N))], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT)
+    path = sim.stdout.readline().split(" on ")[1].split()[0]
+    lines: list[tuple[float, str]] = []
+    threading.Thread(target=lambda: [lines.append((time.monotonic(), ln)) for ln in sim.stderr], daemon=True).start()
+    try:
+        with tempfile.TemporaryDirectory() as d:
+            p = subprocess.Popen([sys.executable, "-m", "monitor", "sweep", path, "--ramp", "10:40:10", "--capture",
+                                  str(Path(d) / "s.spinrec"), "--yes-spin-the-motors", "--headless"],
+                                 stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True, cwd=ROOT)
+            for line in p.stdout:
+                if " / " in line and "%" in line and float(line.split("M1")[1].split("%")[0]) > 11.0:
+                    break
+            os.kill(p.pid, signal.SIGKILL)
+            t = time.monotonic()
+            p.wait(10)
+            wait(lambda: any(ts >= t and "heartbeat lost" in ln for ts, ln in lines))
+            return next(ts for ts, ln in lines if ts >= t and "heartbeat lost" in ln) - t
+    finally:
+        sim.terminate()
+        sim.wait(10)
+
+
 def lost_link() -> float:
     """The simulator steps its device when the port is read, so during the outage its clock waits
     and catches up when the port is back: the latency is measured on the device's own clock (from
@@ -214,6 +242,7 @@ def main() -> int:
         dev.close()
     for name, sig in (("SIGTERM", signal.SIGTERM), ("SIGINT", signal.SIGINT)):
         rows.append(("simulator", name, [sim_signal(sig) for _ in range(n)], base_sim))
+    rows.append(("simulator", "kill -9", [sim_kill() for _ in range(n)], base_sim))
     rows.append(("simulator", "lost link", [lost_link() for _ in range(n)], base_sim))
     print(f"baseline round trip (REQUEST_INFO -> COMMAND_OUTCOME): simulator {base_sim * 1e3:.1f} ms, "
           f"C device {base_c * 1e3:.1f} ms")

@@ -117,11 +117,22 @@ def run(args) -> int:
         print(f"connect with: spinrig watch {url}{profile}", flush=True)
 
     stop = threading.Event()
+    seen = [0]
+
+    def bench_events() -> None:
+        """One stderr line per bench event of the device (armed, stopped and why), on its clock."""
+        dev = stream.device
+        new = min(dev.bench_events - seen[0], len(dev.bench_log))
+        if new > 0:
+            for ms, what in list(dev.bench_log)[-new:]:
+                print(f"t_ms={ms:.0f} {what}", file=sys.stderr, flush=True)
+        seen[0] = dev.bench_events
+
     try:
         if args.tcp is not None:
             stats = serve_tcp(stream, args.tcp, ready, host=args.host, duration=args.duration, stop=stop)
         else:
-            stats = serve_pty(stream, ready, duration=args.duration, stop=stop)
+            stats = serve_pty(stream, ready, duration=args.duration, stop=stop, on_step=bench_events)
     except KeyboardInterrupt:
         stop.set()
         print("spinrig sim: stopped", file=sys.stderr)

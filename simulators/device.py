@@ -11,6 +11,7 @@ Pacing, transports and byte faults are the caller's (``simulators/stream.py``).
 from __future__ import annotations
 
 import struct
+from collections import deque
 from dataclasses import dataclass
 
 import numpy as np
@@ -93,6 +94,9 @@ class SimDevice:
         self.seq = 0
         s = self.scenario
         self.safety = BenchSafety(s.device.heartbeat_timeout_ms, s.device.throttle_ceiling, s.motors.count)
+        #: (device ms, what) of each bench event (armed, stopped and why), newest last, for a console
+        self.bench_log: deque[tuple[float, str]] = deque(maxlen=100)
+        self.bench_events = 0  #: events ever logged (a console prints those it has not yet)
         self.host_control = False  # a host armed in this boot: the script no longer drives the motors
         self.streaming = self.options.stream_at_boot
         self.decoder = fp.StreamDecoder(known_types=HOST_TYPES)
@@ -167,6 +171,10 @@ class SimDevice:
         self.decoder.rejected_payloads.clear()
         self._inbox.extend(i for i in items if isinstance(i, fp.Received))
 
+    def _bench_event(self, now_ms: float, what: str) -> None:
+        self.bench_log.append((now_ms, what))
+        self.bench_events += 1
+
     def _handle(self, item: fp.Received) -> None:
         msg = item.message
         self.host_commands_seen += 1
@@ -180,6 +188,9 @@ class SimDevice:
         if isinstance(msg, fp.ArmBench) and result == fp.Outcome.OK:
             self.host_control = True
             self._applied[:] = 0
+            self._bench_event(now_ms, "armed")
+        if isinstance(msg, fp.StopMotors):
+            self._bench_event(now_ms, "stopped: STOP_MOTORS")
         if isinstance(msg, fp.HostHeartbeat) and result == fp.Outcome.OK:
             return  # heartbeats are answered only when refused
         self._emit(fp.CommandOutcome(type_code, item.seq, int(result), int(detail)))
@@ -220,7 +231,8 @@ class SimDevice:
         step_limit = s.device.slew_per_s * self.control_period_s
         for j in range(n_per):
             t = self.time_s + j * self.control_period_s
-            self.safety.tick(self.device_ms(t))
+            if self.safety.tick(self.device_ms(t)):
+                self._bench_event(self.device_ms(t), "stopped: heartbeat lost")
             target = self._target_throttle(t)
             stopping = target == 0
             delta = np.clip(target - self._applied, -step_limit, step_limit)

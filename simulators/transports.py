@@ -56,8 +56,10 @@ def serve_pty(
     on_ready: Callable[[str], None],
     duration: float | None = None,
     stop: threading.Event | None = None,
+    on_step: Callable[[], None] | None = None,
 ) -> Stats:
-    """Run the stream on a new pty until ``duration`` s (simulated) or ``stop``; returns counts."""
+    """Run the stream on a new pty until ``duration`` s (simulated) or ``stop``; returns counts.
+    ``on_step`` is called after each simulated chunk (a console reporting the device's events)."""
     master, slave = os.openpty()
     tty.setraw(slave)
     os.set_blocking(master, False)
@@ -70,6 +72,8 @@ def serve_pty(
     try:
         while not (stop and stop.is_set()) and (duration is None or stream.time_s < duration):
             _produce(stream, fast, t0, pending, stats)
+            if on_step is not None:
+                on_step()
             r, w, _ = select.select([master], [master] if pending else [], [], POLL_S)
             if r:
                 try:
