@@ -142,25 +142,36 @@ def subprocess_stop(dev: CDevice, how: int) -> float:
         return dev.first(want, t) - t
 
 
+def _sim_sweep(stderr=subprocess.DEVNULL):
+    """``spinrig sim`` in its own process and ``spinrig sweep`` driving it, returned once the motors
+    are commanded: (sim process, sweep process, temporary folder to clean up)."""
+    sim = subprocess.Popen([sys.executable, "-m", "monitor", "sim", "brisling5", "--no-script", "--seed",
+                            str(next(_N))], stdout=subprocess.PIPE, stderr=stderr, text=True, cwd=ROOT)
+    path = sim.stdout.readline().split(" on ")[1].split()[0]
+    d = tempfile.TemporaryDirectory()
+    p = subprocess.Popen([sys.executable, "-m", "monitor", "sweep", path, "--ramp", "10:40:10", "--capture",
+                          str(Path(d.name) / "s.spinrec"), "--yes-spin-the-motors", "--headless"],
+                         stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True, cwd=ROOT)
+    return sim, p, d
+
+
+def _spinning(p) -> None:
+    for line in p.stdout:  # progress lines: until motor 1 is commanded above 11 %
+        if " / " in line and "%" in line and float(line.split("M1")[1].split("%")[0]) > 11.0:
+            return
+
+
 def sim_signal(how: int) -> float:
     """SIGTERM or SIGINT to ``spinrig sweep`` driving ``spinrig sim`` in its own process: the stop's
     latency as the host reports it (stop decided to the device's acknowledgement)."""
-    sim = subprocess.Popen([sys.executable, "-m", "monitor", "sim", "brisling5", "--no-script", "--seed",
-                            str(next(_N))], stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True, cwd=ROOT)
-    path = sim.stdout.readline().split(" on ")[1].split()[0]
+    sim, p, d = _sim_sweep()
     try:
-        with tempfile.TemporaryDirectory() as d:
-            p = subprocess.Popen([sys.executable, "-m", "monitor", "sweep", path, "--ramp", "10:40:10", "--capture",
-                                  str(Path(d) / "s.spinrec"), "--yes-spin-the-motors", "--headless"],
-                                 stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True, cwd=ROOT)
-            for line in p.stdout:
-                if " / " in line and "%" in line and float(line.split("M1")[1].split("%")[0]) > 11.0:
-                    break
-            os.kill(p.pid, how)
-            out = p.communicate(timeout=30)[0]
-        ms = out.split("the device acknowledged in ")[1].split(" ms")[0]
-        return float(ms) / 1000.0
+        _spinning(p)
+        os.kill(p.pid, how)
+        out = p.communicate(timeout=30)[0]
+        return float(out.split("the device acknowledged in ")[1].split(" ms")[0]) / 1000.0
     finally:
+        d.cleanup()
         sim.terminate()
         sim.wait(10)
 
@@ -169,25 +180,18 @@ def sim_kill() -> float:
     """``kill -9`` of the host driving ``spinrig sim`` in its own process: from the kill to the
     simulator's own "stopped: heartbeat lost" line (wall clock; the pty server steps the device in
     real time whether or not anybody reads)."""
-    sim = subprocess.Popen([sys.executable, "-m", "monitor", "sim", "brisling5", "--no-script", "--seed",
-                            str(next(_N))], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=ROOT)
-    path = sim.stdout.readline().split(" on ")[1].split()[0]
+    sim, p, d = _sim_sweep(stderr=subprocess.PIPE)
     lines: list[tuple[float, str]] = []
     threading.Thread(target=lambda: [lines.append((time.monotonic(), ln)) for ln in sim.stderr], daemon=True).start()
     try:
-        with tempfile.TemporaryDirectory() as d:
-            p = subprocess.Popen([sys.executable, "-m", "monitor", "sweep", path, "--ramp", "10:40:10", "--capture",
-                                  str(Path(d) / "s.spinrec"), "--yes-spin-the-motors", "--headless"],
-                                 stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True, cwd=ROOT)
-            for line in p.stdout:
-                if " / " in line and "%" in line and float(line.split("M1")[1].split("%")[0]) > 11.0:
-                    break
-            os.kill(p.pid, signal.SIGKILL)
-            t = time.monotonic()
-            p.wait(10)
-            wait(lambda: any(ts >= t and "heartbeat lost" in ln for ts, ln in lines))
-            return next(ts for ts, ln in lines if ts >= t and "heartbeat lost" in ln) - t
+        _spinning(p)
+        os.kill(p.pid, signal.SIGKILL)
+        t = time.monotonic()
+        p.wait(10)
+        wait(lambda: any(ts >= t and "heartbeat lost" in ln for ts, ln in lines))
+        return next(ts for ts, ln in lines if ts >= t and "heartbeat lost" in ln) - t
     finally:
+        d.cleanup()
         sim.terminate()
         sim.wait(10)
 

@@ -62,6 +62,16 @@ def confirmed(args, ask=input) -> bool:
         return False
 
 
+def _open(args, plan, profile):
+    """The sweep's parts, or the exit code after a one-line error (the capture 2, the port 1)."""
+    try:
+        return open_parts(args.port, plan, profile, args.capture, args.baud, engine_config(args), conditions(args))
+    except OSError as exc:
+        return _err(f"capture {args.capture}: cannot create: {exc.strerror or exc}", 2)
+    except (serial.SerialException, ValueError) as exc:
+        return _err(f"cannot open {args.port}: {exc}", 1)
+
+
 def run(args) -> int:
     try:
         plan = build_plan(args)
@@ -70,12 +80,9 @@ def run(args) -> int:
         return _err(str(exc), 2)
     if not args.headless and sys.stdin.isatty() and sys.stdout.isatty():
         return run_screen(args, plan, profile)
-    try:
-        parts = open_parts(args.port, plan, profile, args.capture, args.baud, engine_config(args), conditions(args))
-    except OSError as exc:
-        return _err(f"capture {args.capture}: cannot create: {exc.strerror or exc}", 2)
-    except (serial.SerialException, ValueError) as exc:
-        return _err(f"cannot open {args.port}: {exc}", 1)
+    parts = _open(args, plan, profile)
+    if isinstance(parts, int):
+        return parts
     capture, link, session, ctl = parts.capture, parts.link, parts.session, parts.controller
     printer = EventPrinter(as_json=args.json)
     old = {s: signal.getsignal(s) for s in (signal.SIGINT, signal.SIGTERM)}
@@ -173,12 +180,9 @@ def _analyse(args, profile) -> None:
 
 def run_screen(args, plan, profile) -> int:
     """The sweep screen (monitor.views.sweep_app): the same checks, the confirmation typed on it."""
-    try:
-        parts = open_parts(args.port, plan, profile, args.capture, args.baud, engine_config(args), conditions(args))
-    except OSError as exc:
-        return _err(f"capture {args.capture}: cannot create: {exc.strerror or exc}", 2)
-    except (serial.SerialException, ValueError) as exc:
-        return _err(f"cannot open {args.port}: {exc}", 1)
+    parts = _open(args, plan, profile)
+    if isinstance(parts, int):
+        return parts
     run = SweepRun(parts)
     try:
         run.wait_device(args.device_timeout)
