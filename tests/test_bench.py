@@ -746,3 +746,15 @@ def test_a_host_that_exits_mid_sweep_stops_the_motors_on_its_way_out(tmp_path):
             link.close()
     finally:
         sim.close()
+
+
+def test_a_device_that_reboots_mid_sweep_ends_the_sweep_early():
+    # a reboot disarms the device (SPEC 7); its answers to the next set-points say so
+    link, ctl = _controller(_sim_url() + "&fault=reboot=3", ramp_plan("10:40:10"))
+    try:
+        ctl.start()
+        report = ctl.join(timeout=20)
+        assert report.why.startswith("the device is no longer armed (it answered NOT_ARMED")
+        assert report.acknowledged and ctl.progress.t_s < 6.0
+    finally:
+        link.close()

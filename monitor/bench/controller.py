@@ -133,6 +133,11 @@ class BenchController:
                             self._outcomes.pop(next(iter(self._outcomes)))
                         if m.command_type == fp.MessageType.SET_THROTTLE and m.result == fp.Outcome.LIMITED:
                             self.progress.limited += 1
+                        elif (m.command_type == fp.MessageType.SET_THROTTLE and self.progress.state == "running"
+                              and m.result in (fp.Outcome.NOT_ARMED, fp.Outcome.BAD_NONCE)):
+                            # it disarmed on its own (a reboot, its watchdog, a fault): the sweep is over
+                            self.abort(f"the device is no longer armed (it answered {fp.Outcome(m.result).name}: "
+                                       "it rebooted or stopped on its own)")
                     elif isinstance(m, fp.DeviceInfo):
                         self.info = m
                         if self._valid_at.size != m.motor_count:
