@@ -28,6 +28,7 @@ from monitor.bench import controller as bench_controller
 from monitor.bench.controller import BenchController, BenchError
 from monitor.bench.plan import Plan, PlanError, load_plan, plan_from_dict, ramp_plan, setpoints
 from monitor.link import Link
+from simulators.cable import PtyCable
 
 from .conftest import examples
 
@@ -136,6 +137,97 @@ def test_the_schedule_never_exceeds_its_limits(raw, max_thr, slew, solo, repeats
     at = np.concatenate([np.linspace(-1, t[-1] + 1, 200), (np.asarray(probes) + 1) / 2 * t[-1]])
     sp = setpoints(t, thr, at)
     assert sp.max() <= max_thr + 1e-9 and sp.min() >= 0
+
+
+short_pieces = st.one_of(  # levels as fractions of the plan's max_throttle
+    st.builds(lambda a, b, s: {"kind": "ramp", "from": a, "to": b, "seconds": s},
+              st.floats(0, 1), st.floats(0, 1), st.floats(3.0, 8.0)),
+    st.builds(lambda a, s: {"kind": "hold", "level": a, "seconds": s}, st.floats(0, 1), st.floats(0.1, 3.0)),
+    st.builds(lambda lv, d: {"kind": "steps", "levels": lv, "dwell_s": d},
+              st.lists(st.floats(0, 1), min_size=1, max_size=4), st.floats(0.1, 1.0)),
+)
+
+
+def _scaled(piece: dict, top: float) -> dict:
+    out = dict(piece)
+    for key in ("from", "to", "level"):
+        if key in out:
+            out[key] = np.floor(out[key] * top * 100.0) / 100.0
+    if "levels" in out:
+        out["levels"] = [np.floor(v * top * 100.0) / 100.0 for v in out["levels"]]
+    return out
+
+
+@pytest.fixture(scope="module")
+def c_devices(c_device):
+    """Two C devices for the timing property: the default 80 % ceiling and a 35 % one."""
+    devs = {80.0: CDevice(c_device, "--seconds", "900"), 35.0: CDevice(c_device, "--seconds", "900", "--ceiling", "35")}
+    yield devs
+    for d in devs.values():
+        d.close()
+
+
+SPEED = 8.0  # the host's clock runs 8 times as fast as the wall: plans of tens of seconds in a few
+
+
+@settings(max_examples=examples(6), deadline=None)
+@given(st.sampled_from([80.0, 35.0]), st.data(), st.lists(short_pieces, min_size=1, max_size=2),
+       st.floats(5.0, 100.0), st.booleans(),
+       st.dictionaries(st.integers(0, 400), st.tuples(st.floats(0.0, 2.0), st.floats(0.0, 0.15)), max_size=12))
+def test_what_the_host_sends_never_exceeds_a_limit_whatever_the_timing(c_devices, ceiling, data, raw, slew, solo,
+                                                                        hiccups):
+    # the driver's clock jumps ahead (a host that woke late or froze: up to 2 s of plan time at
+    # once) and some set-points leave up to 150 ms late (a slow write); whatever the timing, no
+    # set-point sent is above the plan's or the device's limit, none moves faster than the slew
+    # allows over the time that passed, the device never had to clamp one, and the stop is
+    # acknowledged
+    max_thr = round(data.draw(st.floats(20.0, ceiling), label="max_throttle"), 2)
+    pieces_ = [_scaled(p, max_thr) for p in raw]
+    # a ramp faster than the slew is refused when the plan is read: raise the slew to the fastest
+    slew = max([slew] + [abs(p["to"] - p["from"]) / p["seconds"] * 1.001 for p in pieces_ if p["kind"] == "ramp"])
+    plan = plan_from_dict({"plan": {"max_throttle": max_thr, "slew_percent_per_s": slew, "one_at_a_time": solo,
+                                    "max_duration_s": 1e6}, "piece": pieces_}, "h.toml")
+    dev = c_devices[ceiling]
+    calls = {"clock": 0, "jump": 0.0}
+
+    def clock():
+        calls["clock"] += 1
+        jump, _ = hiccups.get(calls["clock"], (0.0, 0.0))
+        calls["jump"] += jump
+        return time.monotonic() * SPEED + calls["jump"]
+
+    link = Link(dev.path)
+    link.start()
+    sent: list[tuple[float, tuple]] = []
+    try:
+        ctl = BenchController(link, plan, clock=clock, rate_hz=bench_controller.RATE_HZ * SPEED)
+        ctl.wait_device(10.0)
+        real_send = link.send
+
+        def send(msg):
+            if isinstance(msg, fp.SetThrottle):
+                late = hiccups.get(calls["clock"], (0.0, 0.0))[1]
+                if late:
+                    time.sleep(late)  # the simulated slow write itself, not a synchronisation
+                sent.append((ctl.progress.t_s, msg.throttles))
+            return real_send(msg)
+
+        link.send = send
+        ctl.start()
+        report = ctl.join(timeout=60)
+        assert report is not None and report.acknowledged, report and report.text()
+        assert ctl.progress.limited == 0  # the device never had to clamp a set-point
+    finally:
+        link.close()
+    assert sent, "no set-point was sent"
+    t = np.array([s[0] for s in sent])
+    units = np.array([s[1] for s in sent], float)
+    assert units.max() <= np.floor(min(max_thr, ceiling) * 100.0 + 1e-6)
+    dt, dv = np.diff(t), np.abs(np.diff(units, axis=0)).max(axis=1)
+    # one unit of rounding (set-points go out floored to 0.01 %) on top of the slew over the time passed
+    assert np.all(dv <= slew * 100.0 * np.maximum(dt, 0.0) * (1 + 1e-9) + 1.0)
+    if solo:
+        assert np.all((units > 0).sum(axis=1) <= 1)
 
 
 def test_one_at_a_time_runs_each_motor_alone_with_a_rest_between():
@@ -290,6 +382,66 @@ def test_a_lost_link_aborts_and_the_device_stops_on_its_heartbeat_timeout():
         _wait(lambda: not dev.safety.armed and not dev.applied_throttle.any(), timeout=5,
               what="the simulated device disarmed")
         assert dev.safety.faults & fp.Fault.HEARTBEAT_LOST
+    finally:
+        link.close()
+
+
+def test_a_pulled_cable_leaves_the_c_device_to_its_heartbeat_timeout(cdev):
+    # the cable between host and C device is pulled mid-sweep: the host's port goes away (it says
+    # the stop was never acknowledged); the device, hearing nothing, stops on its heartbeat timeout
+    cable = PtyCable(cdev.path)
+    link, ctl = _controller(cable.path, ramp_plan("10:40:10"))
+    try:
+        ctl.start()
+        _wait(lambda: ctl.progress.max_commanded > 12.0, what="the motors commanded")
+        pulled = cable.pull()
+        report = ctl.join(timeout=10)
+        assert report.why.startswith("link lost") and not report.acknowledged
+        assert "never acknowledged" in report.text()
+        _wait(lambda: cdev.seen("stopped: heartbeat lost"), timeout=5, what="the device's heartbeat stop")
+        assert cdev.seen("stopped: heartbeat lost")[0] >= pulled
+        assert not cdev.seen("stopped: STOP_MOTORS")  # no stop could reach it
+    finally:
+        link.close()
+        cable.close()
+
+
+def test_a_device_gone_silent_mid_sweep_is_stopped(cdev):
+    # its transmit line breaks: the host hears no status, so the abort rules are blind; it stops
+    # the sweep, its stop still reaches the device, and the missing answer is reported loudly
+    cable = PtyCable(cdev.path)
+    link, ctl = _controller(cable.path, ramp_plan("10:40:10"))
+    try:
+        ctl.start()
+        _wait(lambda: ctl.progress.max_commanded > 12.0, what="the motors commanded")
+        muted = cable.mute()
+        report = ctl.join(timeout=10)
+        assert report.why.startswith("the device went silent: no frame for 1.")
+        assert not report.acknowledged and "never acknowledged" in report.text()
+        _wait(lambda: cdev.seen("stopped: STOP_MOTORS"), timeout=5, what="the device's stop line")
+        heard = ctl._heard_at  # the last frame that came through, before the line broke
+        assert cdev.seen("stopped: STOP_MOTORS")[0] >= max(heard + bench_controller.SILENT_S, muted)
+        assert not cdev.seen("stopped: heartbeat lost")  # it heard the host to the end
+    finally:
+        link.close()
+        cable.close()
+
+
+def test_a_simulated_device_that_stalls_mid_sweep_is_stopped():
+    # the simulator sends nothing for 3 s (then its backlog): the sweep stops on the silence and
+    # the device, which still hears the host, stops on the host's STOP_MOTORS
+    from simulators.urlhandler import protocol_sim
+
+    url = _sim_url() + "&fault=stall=2.5:3"
+    link, ctl = _controller(url, ramp_plan("10:40:10"))
+    try:
+        ctl.start()
+        report = ctl.join(timeout=20)
+        assert report.why.startswith("the device went silent") and ctl.progress.t_s < 5.0
+        stream = next(v[0] for k, v in protocol_sim._LIVE.items() if url.split("?")[1].split("&")[1] in k)
+        dev = stream.device
+        _wait(lambda: not dev.safety.armed, timeout=5, what="the simulated device disarmed")
+        assert dev.safety.faults & fp.Fault.STOP_COMMAND and not dev.safety.faults & fp.Fault.HEARTBEAT_LOST
     finally:
         link.close()
 

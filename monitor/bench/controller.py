@@ -13,11 +13,11 @@ stop never waits for the consumer. Running a plan:
    slew-limited schedule, clamped again to the plan's and the device's limits), which also keeps
    the device's heartbeat timer running; the link's own heartbeats carry the nonce too;
 4. it stops all motors (STOP_MOTORS) at the plan's end, on :meth:`abort` (the abort key, SIGINT,
-   SIGTERM, an abort rule, a lost link), on an exception in the driver, and from
-   :func:`atexit`; and waits for the device to acknowledge (its COMMAND_OUTCOME for that frame,
-   or a DEVICE_STATUS saying it is disarmed), sending the stop again up to :data:`STOP_TRIES`
-   times. A stop that is never acknowledged is reported loudly: the device's own heartbeat
-   timeout is then what stops the motors.
+   SIGTERM, an abort rule, a lost link, a device silent for :data:`SILENT_S`), on an exception
+   in the driver, and from :func:`atexit`; and waits for the device to acknowledge (its
+   COMMAND_OUTCOME for that frame, or a DEVICE_STATUS saying it is disarmed), sending the stop
+   again up to :data:`STOP_TRIES` times. A stop that is never acknowledged is reported loudly:
+   the device's own heartbeat timeout is then what stops the motors.
 
 A host that dies without any of this (``kill -9``) leaves the device to its heartbeat timeout
 (SPEC.md section 7), which no host code can replace.
@@ -46,6 +46,7 @@ STOP_TRIES = 3
 ARM_TRIES = 3
 ERROR_WINDOW_S = 1.0
 STALE_S = 1.0  #: a device with no DEVICE_STATUS for this long (5 a second are due) is not armed
+SILENT_S = 1.0  #: a running sweep whose device sends no frame at all for this long is stopped
 
 
 class BenchError(RuntimeError):
@@ -110,6 +111,7 @@ class BenchController:
         self._nonce = 0
         self._disarmed_at: float | None = None  #: host time a status last said disarmed
         self._status_at: float | None = None  #: host time of the last DEVICE_STATUS
+        self._heard_at = 0.0  #: host time of the last frame of any kind
         self._valid_at = np.zeros(0)  #: host time each motor last had live telemetry
         self._errors: deque[tuple[float, int]] = deque(maxlen=256)
         self._times = self._thr = None
@@ -123,6 +125,8 @@ class BenchController:
                 self.abort(f"link lost: {entry.text}")
             return
         now, items = entry
+        if any(isinstance(it, (fp.Received, fp.GyroBatch, fp.MotorBatch)) for it in items):
+            self._heard_at = now
         with self._cond:
             for it in items:
                 if isinstance(it, fp.Received):
@@ -313,6 +317,11 @@ class BenchController:
         k = 0
         try:
             while True:
+                silent = time.monotonic() - self._heard_at
+                if silent > SILENT_S and not self._abort.is_set():
+                    # its transmit line broke or its firmware hung: the abort rules are blind
+                    self.abort(f"the device went silent: no frame for {silent:.1f} s (a DEVICE_STATUS at "
+                               "least 5 times a second is due)")
                 if self._abort.is_set():
                     reason, why = fp.StopReason.USER, self._why
                     break
