@@ -8,7 +8,8 @@ reported, and the capture is analysed (modes, bands, imbalance).
 
 Exit codes: 0 the plan ran to its end; 3 it was stopped early (abort key, Ctrl-C, SIGTERM, an
 abort rule, a lost link, a device silent for 1 s) and the device acknowledged the stop; 1 the
-device never acknowledged a stop, or the device would not arm; 2 bad usage, a bad plan, or no confirmation (nothing armed).
+device never acknowledged a stop, or the device would not arm; 2 bad usage, a bad plan, or no
+confirmation (nothing armed).
 """
 
 from __future__ import annotations
