@@ -15,7 +15,10 @@ that baseline:
   and ``spinrig sim`` in its own process);
 - a lost link (simulator): from the last host frame the device heard to its heartbeat stop, on
   the simulated device's own clock (it is stepped when its port is read, so during an outage its
-  clock waits for the port to come back).
+  clock waits for the port to come back);
+- the C device through a cable (``simulators/cable.py``) that is pulled (to the device's own
+  "heartbeat lost" line) or whose device-to-host line is muted (the host stops the sweep after
+  ``SILENT_S`` with no frame; to the device's "stopped: STOP_MOTORS" line), wall clock.
 
 Not a test: latencies depend on the machine; the tests check that every path stops.
 """
@@ -226,6 +229,31 @@ def lost_link() -> float:
     return seen["latency_ms"] / 1000.0
 
 
+def cable_fault(exe: Path, how: str) -> float:
+    """A sweep of a fresh C device through a PtyCable; ``how`` is "pull" or "mute": from the fault
+    to the device's own stop line (wall clock)."""
+    from simulators.cable import PtyCable
+
+    dev = CDevice(exe)
+    cable = PtyCable(dev.path)
+    link = Link(cable.path)
+    link.start()
+    try:
+        ctl = bc.BenchController(link, ramp_plan("10:40:10"))
+        ctl.wait_device(10)
+        ctl.start()
+        wait(lambda: ctl.progress.max_commanded > 12.0)
+        at = getattr(cable, how)()
+        want = "stopped: heartbeat lost" if how == "pull" else "stopped: STOP_MOTORS"
+        wait(lambda: dev.first(want, at) is not None)
+        ctl.join(10)
+        return dev.first(want, at) - at
+    finally:
+        link.close()
+        cable.close()
+        dev.close()
+
+
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--repeats", type=int, default=3)
@@ -248,6 +276,8 @@ def main() -> int:
         rows.append(("simulator", name, [sim_signal(sig) for _ in range(n)], base_sim))
     rows.append(("simulator", "kill -9", [sim_kill() for _ in range(n)], base_sim))
     rows.append(("simulator", "lost link", [lost_link() for _ in range(n)], base_sim))
+    rows.append(("C device", "cable pulled", [cable_fault(exe, "pull") for _ in range(n)], base_c))
+    rows.append(("C device", "silent", [cable_fault(exe, "mute") for _ in range(n)], base_c))
     print(f"baseline round trip (REQUEST_INFO -> COMMAND_OUTCOME): simulator {base_sim * 1e3:.1f} ms, "
           f"C device {base_c * 1e3:.1f} ms")
     print(f"{'device':10} {'stop path':12} {'median ms':>9} {'x round trip':>12}  all (ms)")

@@ -9,6 +9,7 @@ are printed by ``benchmarks/stop_latency.py``).
 
 from __future__ import annotations
 
+import contextlib
 import os
 import select
 import signal
@@ -297,6 +298,13 @@ def _sim_url():
     return f"sim://brisling5?script=0&seed={next(_SIM_N)}"
 
 
+def _sim_device(url):
+    """The simulated device behind an open ``sim://`` port (the URL handler keeps it by URL)."""
+    from simulators.urlhandler import protocol_sim
+
+    return protocol_sim._LIVE[url][0].device
+
+
 def _controller(port, plan):
     link = Link(port)
     link.start()
@@ -373,8 +381,6 @@ def test_an_exception_in_the_driver_stops_the_motors(device_port, monkeypatch):
 def test_a_lost_link_aborts_and_the_device_stops_on_its_heartbeat_timeout():
     # the simulator's port goes away for 3 s mid-sweep: the host cannot send a stop (and says so);
     # the device, hearing nothing, stops its motors by its own heartbeat timeout
-    from simulators.urlhandler import protocol_sim
-
     url = _sim_url() + "&fault=disconnect=2.5:3"
     link, ctl = _controller(url, ramp_plan("10:40:10"))
     try:
@@ -382,8 +388,7 @@ def test_a_lost_link_aborts_and_the_device_stops_on_its_heartbeat_timeout():
         report = ctl.join(timeout=20)
         assert report.why.startswith("link lost") and not report.acknowledged
         assert "never acknowledged" in report.text() and "kill switch" in report.text()
-        stream = next(v[0] for k, v in protocol_sim._LIVE.items() if url.split("?")[1].split("&")[1] in k)
-        dev = stream.device
+        dev = _sim_device(url)
         _wait(lambda: not dev.safety.armed and not dev.applied_throttle.any(), timeout=5,
               what="the simulated device disarmed")
         assert dev.safety.faults & fp.Fault.HEARTBEAT_LOST
@@ -391,14 +396,25 @@ def test_a_lost_link_aborts_and_the_device_stops_on_its_heartbeat_timeout():
         link.close()
 
 
-def test_a_pulled_cable_leaves_the_c_device_to_its_heartbeat_timeout(cdev):
-    # the cable between host and C device is pulled mid-sweep: the host's port goes away (it says
-    # the stop was never acknowledged); the device, hearing nothing, stops on its heartbeat timeout
+@contextlib.contextmanager
+def _sweep_through_cable(cdev):
+    """A 10-40 % sweep of the C device through a :class:`PtyCable`, once the motors are commanded:
+    (cable, controller); the link and the cable are closed on the way out."""
     cable = PtyCable(cdev.path)
     link, ctl = _controller(cable.path, ramp_plan("10:40:10"))
     try:
         ctl.start()
         _wait(lambda: ctl.progress.max_commanded > 12.0, what="the motors commanded")
+        yield cable, ctl
+    finally:
+        link.close()
+        cable.close()
+
+
+def test_a_pulled_cable_leaves_the_c_device_to_its_heartbeat_timeout(cdev):
+    # the cable between host and C device is pulled mid-sweep: the host's port goes away (it says
+    # the stop was never acknowledged); the device, hearing nothing, stops on its heartbeat timeout
+    with _sweep_through_cable(cdev) as (cable, ctl):
         pulled = cable.pull()
         report = ctl.join(timeout=10)
         assert report.why.startswith("link lost") and not report.acknowledged
@@ -406,19 +422,12 @@ def test_a_pulled_cable_leaves_the_c_device_to_its_heartbeat_timeout(cdev):
         _wait(lambda: cdev.seen("stopped: heartbeat lost"), timeout=5, what="the device's heartbeat stop")
         assert cdev.seen("stopped: heartbeat lost")[0] >= pulled
         assert not cdev.seen("stopped: STOP_MOTORS")  # no stop could reach it
-    finally:
-        link.close()
-        cable.close()
 
 
 def test_a_device_gone_silent_mid_sweep_is_stopped(cdev):
     # its transmit line breaks: the host hears no status, so the abort rules are blind; it stops
     # the sweep, its stop still reaches the device, and the missing answer is reported loudly
-    cable = PtyCable(cdev.path)
-    link, ctl = _controller(cable.path, ramp_plan("10:40:10"))
-    try:
-        ctl.start()
-        _wait(lambda: ctl.progress.max_commanded > 12.0, what="the motors commanded")
+    with _sweep_through_cable(cdev) as (cable, ctl):
         muted = cable.mute()
         report = ctl.join(timeout=10)
         assert report.why.startswith("the device went silent: no frame for 1.")
@@ -427,24 +436,18 @@ def test_a_device_gone_silent_mid_sweep_is_stopped(cdev):
         heard = ctl._heard_at  # the last frame that came through, before the line broke
         assert cdev.seen("stopped: STOP_MOTORS")[0] >= max(heard + bench_controller.SILENT_S, muted)
         assert not cdev.seen("stopped: heartbeat lost")  # it heard the host to the end
-    finally:
-        link.close()
-        cable.close()
 
 
 def test_a_simulated_device_that_stalls_mid_sweep_is_stopped():
     # the simulator sends nothing for 3 s (then its backlog): the sweep stops on the silence and
     # the device, which still hears the host, stops on the host's STOP_MOTORS
-    from simulators.urlhandler import protocol_sim
-
     url = _sim_url() + "&fault=stall=2.5:3"
     link, ctl = _controller(url, ramp_plan("10:40:10"))
     try:
         ctl.start()
         report = ctl.join(timeout=20)
         assert report.why.startswith("the device went silent") and ctl.progress.t_s < 5.0
-        stream = next(v[0] for k, v in protocol_sim._LIVE.items() if url.split("?")[1].split("&")[1] in k)
-        dev = stream.device
+        dev = _sim_device(url)
         _wait(lambda: not dev.safety.armed, timeout=5, what="the simulated device disarmed")
         assert dev.safety.faults & fp.Fault.STOP_COMMAND and not dev.safety.faults & fp.Fault.HEARTBEAT_LOST
     finally:
