@@ -18,7 +18,8 @@ that baseline:
   clock waits for the port to come back);
 - the C device through a cable (``simulators/cable.py``) that is pulled (to the device's own
   "heartbeat lost" line) or whose device-to-host line is muted (the host stops the sweep after
-  ``SILENT_S`` with no frame; to the device's "stopped: STOP_MOTORS" line), wall clock.
+  ``SILENT_S`` with no frame; to the device's "stopped: STOP_MOTORS" line) or backed up (nobody
+  reads the device any more: the same), wall clock.
 
 Not a test: latencies depend on the machine; the tests check that every path stops.
 """
@@ -278,6 +279,7 @@ def main() -> int:
     rows.append(("simulator", "lost link", [lost_link() for _ in range(n)], base_sim))
     rows.append(("C device", "cable pulled", [cable_fault(exe, "pull") for _ in range(n)], base_c))
     rows.append(("C device", "silent", [cable_fault(exe, "mute") for _ in range(n)], base_c))
+    rows.append(("C device", "backed up", [cable_fault(exe, "back_up") for _ in range(n)], base_c))
     print(f"baseline round trip (REQUEST_INFO -> COMMAND_OUTCOME): simulator {base_sim * 1e3:.1f} ms, "
           f"C device {base_c * 1e3:.1f} ms")
     print(f"{'device':10} {'stop path':12} {'median ms':>9} {'x round trip':>12}  all (ms)")

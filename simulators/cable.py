@@ -7,6 +7,8 @@ between it and the device's pty. Two faults a bench sees:
   side of the port goes away (its reads fail, as when a USB serial adapter vanishes).
 - :meth:`PtyCable.mute`: the device's transmit line breaks (or it hangs while its motors run):
   the host's set-points still reach the device, but nothing the device says reaches the host.
+- :meth:`PtyCable.back_up`: nobody reads what the device sends any more (a host whose reader
+  hung, a full USB buffer): the device's output backs up while the host's commands still reach it.
 
 The wall time of each fault (``time.monotonic()``) is kept in :attr:`PtyCable.pulled_at` and
 :attr:`PtyCable.muted_at` so a test can time what the device did after it.
@@ -30,6 +32,7 @@ class PtyCable:
         self.path = os.ttyname(self._slave)
         self.pulled_at: float | None = None
         self.muted_at: float | None = None
+        self.backed_up_at: float | None = None
         self.to_device = self.to_host = 0  #: bytes carried each way
         self._stop = threading.Event()
         self._lock = threading.Lock()
@@ -39,7 +42,8 @@ class PtyCable:
     def _run(self) -> None:
         while not self._stop.is_set():
             with self._lock:
-                fds = [f for f in (self._dev, self._master) if f is not None]
+                fds = [f for f in (self._dev, self._master) if f is not None
+                       and not (f == self._dev and self.backed_up_at is not None)]
             try:
                 ready, _, _ = select.select(fds, [], [], 0.05)
             except (OSError, ValueError):
@@ -47,17 +51,17 @@ class PtyCable:
             for fd in ready:
                 try:
                     data = os.read(fd, 4096)
+                    with self._lock:
+                        if fd == self._dev and self._master is not None and self.muted_at is None:
+                            os.write(self._master, data)
+                            self.to_host += len(data)
+                        elif fd == self._master and self.pulled_at is None:
+                            os.write(self._dev, data)
+                            self.to_device += len(data)
                 except OSError:
-                    data = b""
-                if not data:
-                    continue
-                with self._lock:
-                    if fd == self._dev and self._master is not None and self.muted_at is None:
-                        os.write(self._master, data)
-                        self.to_host += len(data)
-                    elif fd == self._master and self.pulled_at is None:
-                        os.write(self._dev, data)
-                        self.to_device += len(data)
+                    if fd == self._dev:  # the device went away: so does the host's port, as a pulled cable
+                        self.pull()
+                        return
 
     def pull(self) -> float:
         """Pull the cable: the device hears nothing more and the host's port goes away."""
@@ -73,6 +77,12 @@ class PtyCable:
         with self._lock:
             self.muted_at = time.monotonic()
         return self.muted_at
+
+    def back_up(self) -> float:
+        """Stop reading the device: its output fills the pty and backs up; it still hears the host."""
+        with self._lock:
+            self.backed_up_at = time.monotonic()
+        return self.backed_up_at
 
     def close(self) -> None:
         self._stop.set()

@@ -424,11 +424,15 @@ def test_a_pulled_cable_leaves_the_c_device_to_its_heartbeat_timeout(cdev):
         assert not cdev.seen("stopped: STOP_MOTORS")  # no stop could reach it
 
 
-def test_a_device_gone_silent_mid_sweep_is_stopped(cdev):
-    # its transmit line breaks: the host hears no status, so the abort rules are blind; it stops
-    # the sweep, its stop still reaches the device, and the missing answer is reported loudly
+@pytest.mark.parametrize("fault", ["mute", "back_up"])
+def test_a_device_gone_silent_mid_sweep_is_stopped(cdev, fault):
+    # its transmit line breaks, or nobody reads it and its output backs up: the host hears no
+    # status, so the abort rules are blind; it stops the sweep, its stop still reaches the device
+    # (which must keep hearing the host however full its output is), and the missing answer is
+    # reported loudly
     with _sweep_through_cable(cdev) as (cable, ctl):
-        muted = cable.mute()
+        muted = getattr(cable, fault)()
+        sent_before = cable.to_device
         report = ctl.join(timeout=10)
         assert report.why.startswith("the device went silent: no frame for 1.")
         assert not report.acknowledged and "never acknowledged" in report.text()
@@ -436,6 +440,13 @@ def test_a_device_gone_silent_mid_sweep_is_stopped(cdev):
         heard = ctl._heard_at  # the last frame that came through, before the line broke
         assert cdev.seen("stopped: STOP_MOTORS")[0] >= max(heard + bench_controller.SILENT_S, muted)
         assert not cdev.seen("stopped: heartbeat lost")  # it heard the host to the end
+        if fault == "back_up":
+            # its output still full, the device's loop keeps running: SIGTERM ends it (the 10 s
+            # wait inside close() only guards against a hang)
+            _wait(lambda: cable.to_device > sent_before, what="the host's next frame carried to the device")
+            cdev.close()
+            _wait(lambda: cdev.seen("exit on a signal, motors stopped"), timeout=5, what="the device's exit line")
+            assert cdev.proc.returncode == 0
 
 
 def test_a_simulated_device_that_stalls_mid_sweep_is_stopped():
@@ -469,18 +480,24 @@ def test_sigint_and_sigterm_stop_the_sweep_command(cdev, tmp_path, sig):
     assert cdev.seen("stopped: STOP_MOTORS")
 
 
-def test_a_host_killed_with_sigkill_leaves_the_device_to_its_heartbeat_timeout(cdev, tmp_path):
+@pytest.mark.parametrize("sig", [signal.SIGKILL, signal.SIGSTOP])
+def test_a_host_killed_or_frozen_leaves_the_device_to_its_heartbeat_timeout(cdev, tmp_path, sig):
+    # SIGKILL closes the port; SIGSTOP freezes the host with its port open and unread, so the
+    # device's output backs up: its watchdog must run all the same
     p = subprocess.Popen([sys.executable, "-m", "monitor", "sweep", cdev.path, "--ramp", "10:40:10", "--capture",
                           str(tmp_path / "k.spinrec"), "--yes-spin-the-motors"], stdout=subprocess.DEVNULL,
                          stderr=subprocess.DEVNULL, cwd=ROOT)
-    _wait(lambda: cdev.seen("armed"), timeout=20, what="the device armed")
-    time.sleep(0.5)
-    os.kill(p.pid, signal.SIGKILL)
-    killed = time.monotonic()
-    p.wait(timeout=10)
-    _wait(lambda: cdev.seen("stopped: heartbeat lost"), timeout=5, what="the device's heartbeat stop")
-    assert cdev.seen("stopped: heartbeat lost")[0] >= killed - 0.05
-    assert not cdev.seen("stopped: STOP_MOTORS")  # nobody sent one: the device did it alone
+    try:
+        _wait(lambda: cdev.seen("armed"), timeout=20, what="the device armed")
+        time.sleep(0.5)  # let it spin up: the sweep is under way (not a synchronisation)
+        os.kill(p.pid, sig)
+        killed = time.monotonic()
+        _wait(lambda: cdev.seen("stopped: heartbeat lost"), timeout=5, what="the device's heartbeat stop")
+        assert cdev.seen("stopped: heartbeat lost")[0] >= killed - 0.05
+        assert not cdev.seen("stopped: STOP_MOTORS")  # nobody sent one: the device did it alone
+    finally:
+        p.kill()
+        p.wait(timeout=10)
 
 
 # ----------------------------------------------------------------- nothing spins

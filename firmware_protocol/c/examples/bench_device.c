@@ -69,25 +69,31 @@ static uint32_t hal_now_us(void) { return (uint32_t)(uint64_t)((hal_clock_s() - 
  * output is dropped, as a UART's full transmit buffer would drop it; the host's decoder counts the
  * damage and resynchronises at the next delimiter. A closed host is not an error here: the
  * heartbeat watchdog handles it. */
+static int hal_tx_cut = 0; /* a frame was cut short: a 0x00 goes first to end it (SPEC 3.2) */
+
 static void hal_write(const uint8_t *buf, size_t len)
 {
-    int tries = 0;
-    while (len > 0 && tries < 50) {
-        ssize_t n = write(hal_out, buf, len);
-        if (n < 0 && (errno == EINTR || errno == EAGAIN)) {
-            struct pollfd p;
-            p.fd = hal_out;
-            p.events = POLLOUT;
-            p.revents = 0;
-            (void)poll(&p, 1, 1);
-            tries++;
+    /* Never waits: when the host does not read and the output is full, the rest of the frame is
+     * dropped, as an overflowing UART FIFO would drop it. A device that waited here would stop
+     * hearing the host's commands and running its watchdog (every loop would take longer). */
+    size_t sent = 0;
+    if (hal_tx_cut) {
+        static const uint8_t zero = 0;
+        if (write(hal_out, &zero, 1) != 1) {
+            return;
+        }
+        hal_tx_cut = 0;
+    }
+    while (sent < len) {
+        ssize_t n = write(hal_out, buf + sent, len - sent);
+        if (n < 0 && errno == EINTR) {
             continue;
         }
         if (n <= 0) {
+            hal_tx_cut = sent > 0;
             return;
         }
-        buf += n;
-        len -= (size_t)n;
+        sent += (size_t)n;
     }
 }
 
