@@ -7,6 +7,8 @@ between it and the device's pty. Two faults a bench sees:
   side of the port goes away (its reads fail, as when a USB serial adapter vanishes).
 - :meth:`PtyCable.mute`: the device's transmit line breaks (or it hangs while its motors run):
   the host's set-points still reach the device, but nothing the device says reaches the host.
+- :meth:`PtyCable.garble`: the line to the host turns noisy (a loose connector, a motor lead
+  beside it): every Nth byte the device sends arrives inverted.
 - :meth:`PtyCable.back_up`: nobody reads what the device sends any more (a host whose reader
   hung, a full USB buffer): the device's output backs up while the host's commands still reach it.
 
@@ -22,6 +24,8 @@ import threading
 import time
 import tty
 
+import numpy as np
+
 
 class PtyCable:
     def __init__(self, device_path: str):
@@ -33,6 +37,8 @@ class PtyCable:
         self.pulled_at: float | None = None
         self.muted_at: float | None = None
         self.backed_up_at: float | None = None
+        self._garble_every = 0
+        self._garble_phase = 0
         self.to_device = self.to_host = 0  #: bytes carried each way
         self._stop = threading.Event()
         self._lock = threading.Lock()
@@ -53,6 +59,8 @@ class PtyCable:
                     data = os.read(fd, 4096)
                     with self._lock:
                         if fd == self._dev and self._master is not None and self.muted_at is None:
+                            if self._garble_every:
+                                data = self._garbled(data)
                             os.write(self._master, data)
                             self.to_host += len(data)
                         elif fd == self._master and self.pulled_at is None:
@@ -77,6 +85,20 @@ class PtyCable:
         with self._lock:
             self.muted_at = time.monotonic()
         return self.muted_at
+
+    def garble(self, every: int) -> float:
+        """From now on invert every ``every``-th byte the device sends (0 ends it)."""
+        with self._lock:
+            self._garble_every, self._garble_phase = int(every), 0
+        return time.monotonic()
+
+    def _garbled(self, data: bytes) -> bytes:
+        buf = np.frombuffer(data, np.uint8).copy()
+        k = self._garble_every
+        first = (k - 1 - self._garble_phase) % k
+        buf[first::k] ^= 0xFF
+        self._garble_phase = (self._garble_phase + len(buf)) % k
+        return buf.tobytes()
 
     def back_up(self) -> float:
         """Stop reading the device: its output fills the pty and backs up; it still hears the host."""

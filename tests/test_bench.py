@@ -767,14 +767,34 @@ def test_motor_telemetry_lost_while_commanded_aborts(c_device):
         d.close()
 
 
-def test_a_link_with_many_bad_frames_aborts():
+def test_a_link_with_many_bad_frames_arms_nothing():
+    # corrupt from boot: the link is judged before arming, and nothing spins on it
     link, ctl = _controller(_sim_url() + "&fault=corrupt=0.0005", _plan_with({"link_errors_per_s": 5}))
     try:
-        ctl.start()
-        report = ctl.join(timeout=20)
-        assert "bad frames a second on the link, over the limit of 5" in report.why
+        _wait(lambda: link.decoder.counters.bad_frames > 10, what="bad frames counted")
+        with pytest.raises(BenchError, match=r"bad frames a second on the link, over the plan's limit of 5 "
+                                             r"\(abort\.link_errors_per_s\): check the cable; nothing armed"):
+            ctl.start()
+        assert link.nonce == 0 and ctl.progress.sent == 0 and not ctl.running
     finally:
         link.close()
+
+
+def test_a_link_turning_noisy_mid_sweep_aborts(cdev):
+    # the C device through a cable that goes bad once the motors turn: every 40th byte inverted
+    # spoils most frames; the abort rule stops the sweep, and the stop is acknowledged through it
+    cable = PtyCable(cdev.path)
+    link, ctl = _controller(cable.path, _plan_with({"link_errors_per_s": 5}))
+    try:
+        ctl.start()
+        _wait(lambda: ctl.progress.max_commanded > 11.0, what="the motors commanded")
+        cable.garble(40)
+        report = ctl.join(timeout=20)
+        assert "bad frames a second on the link, over the limit of 5" in report.why
+        _wait(lambda: cdev.seen("stopped: STOP_MOTORS"), timeout=5, what="the device's stop line")
+    finally:
+        link.close()
+        cable.close()
 
 
 def test_a_crossing_stronger_than_its_limit_aborts_and_a_weaker_one_does_not():

@@ -184,16 +184,22 @@ class BenchController:
             self.abort(f"gyro {ax} RMS {rms.max():.0f} deg/s over the limit of {limit:g} deg/s")
 
     def _link_errors(self, now: float) -> None:
-        limit = self.plan.abort.link_errors_per_s
         bad = self.link.decoder.counters.bad_frames
         self._errors.append((now, bad))
         while self._errors and now - self._errors[0][0] > ERROR_WINDOW_S:
             self._errors.popleft()
-        if limit and self.progress.state == "running" and len(self._errors) > 1:
-            span = max(now - self._errors[0][0], 1e-3)
-            rate = (bad - self._errors[0][1]) / max(span, ERROR_WINDOW_S / 4)
+        limit = self.plan.abort.link_errors_per_s
+        if limit and self.progress.state == "running":
+            rate = self._error_rate()
             if rate > limit:
                 self.abort(f"{rate:.0f} bad frames a second on the link, over the limit of {limit:g}")
+
+    def _error_rate(self) -> float:
+        """Bad frames a second over the last :data:`ERROR_WINDOW_S` (at least a quarter of it)."""
+        if len(self._errors) < 2:
+            return 0.0
+        (t0, b0), (t1, b1) = self._errors[0], self._errors[-1]
+        return (b1 - b0) / max(t1 - t0, ERROR_WINDOW_S / 4)
 
     def observe_events(self, events: list) -> None:
         """Events of the engine (the consumer's thread): a crossing too strong aborts."""
@@ -219,8 +225,9 @@ class BenchController:
             return self.info
 
     def check(self) -> None:
-        """The plan against the device (raises PlanError naming the field), and the device alive:
-        a DEVICE_STATUS within :data:`STALE_S` (raises BenchError)."""
+        """The plan against the device (raises PlanError naming the field), the device alive (a
+        DEVICE_STATUS within :data:`STALE_S`) and its link no worse than the plan's error limit
+        (raises BenchError)."""
         info = self.info
         self.plan.check_device(info.motor_count, info.throttle_ceiling / 100.0)
         end = time.monotonic() + STALE_S
@@ -233,6 +240,10 @@ class BenchController:
                     raise BenchError(f"{self.link.port_name}: the device {seen} (at least 5 a second are due): "
                                      "stale, nothing armed")
                 self._cond.wait(left)
+            rate, limit = self._error_rate(), self.plan.abort.link_errors_per_s
+        if limit and rate > limit:
+            raise BenchError(f"{self.link.port_name}: {rate:.0f} bad frames a second on the link, over the plan's "
+                             f"limit of {limit:g} (abort.link_errors_per_s): check the cable; nothing armed")
 
     def _answer(self, seq: int | None, after: float, timeout_s: float = ANSWER_S) -> fp.CommandOutcome | None:
         if seq is None:
