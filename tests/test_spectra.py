@@ -168,24 +168,31 @@ def test_a_masked_frame_equals_the_periodogram_of_its_real_samples(seed, cuts):
     x = rng.normal(0, 2.0, (n, 3)) + 0.7
     valid = np.ones(n, bool)
     for at in rng.integers(0, n - 64, 4):
-        valid[at: at + rng.integers(1, 64)] = False
+        valid[at: at + rng.integers(1, 64)] = False  # holes of one sample and up
+    if rng.random() < 0.5:  # a hole longer than a frame: frames with no real sample at all
+        at = int(rng.integers(0, n - cfg.nperseg - 8))
+        valid[at: at + cfg.nperseg + 8] = False
     stft = RollingSTFT(cfg)
     got, shares, starts = [], [], []
     edges = sorted({min(c, n) for c in np.cumsum(cuts)} | {n})
     a = 0
     for b in edges:
-        fb = stft.push(np.where(valid[a:b, None], x[a:b], 0.0), valid[a:b])
+        # a block with no hole is pushed as the assembler pushes it: without a mask, half the time
+        mask = None if valid[a:b].all() and rng.random() < 0.5 else valid[a:b]
+        fb = stft.push(np.where(valid[a:b, None], x[a:b], 0.0), mask)
         if fb is not None:
             got.append(fb.psd)
             starts.append(fb.start)
             shares.append(fb.filled if fb.filled is not None else np.zeros(len(fb.start)))
         a = b
     psd, start, share = np.concatenate(got), np.concatenate(starts), np.concatenate(shares)
+    assert list(start) == list(range(0, n - cfg.nperseg + 1, cfg.hop))  # every frame, once, in order
     w = signal.get_window("hann", cfg.nperseg)
     for k, s0 in enumerate(start.tolist()):
         m = valid[s0: s0 + cfg.nperseg].astype(float)
         assert share[k] == pytest.approx(1 - m.mean())
-        if m.all():
+        if not m.any():
+            np.testing.assert_array_equal(psd[k], 0.0)  # nothing real: no power, not a NaN
             continue
         seg = x[s0: s0 + cfg.nperseg]
         mean = (seg * m[:, None]).sum(axis=0) / m.sum()
@@ -205,6 +212,26 @@ def test_a_frame_with_one_real_sample_removes_that_sample_as_its_mean():
     fb = RollingSTFT(cfg).push(np.where(valid[:, None], x, 0.0), valid)
     assert fb.filled[0] == pytest.approx(1 - 1 / n)
     np.testing.assert_allclose(fb.psd[0], 0.0, atol=1e-20)  # the mean over 1 sample, not half of it
+
+
+def test_a_frame_with_two_real_samples_under_the_window_skirt_keeps_their_power():
+    # two real samples where the Hann window is small (sum((w m)^2) well under 1): their PSD is
+    # the periodogram of the two, scaled up to the whole window's energy, not zeroed
+    cfg = SpectrumConfig(FS, 0.064, 0.0)
+    n = cfg.nperseg
+    x = np.zeros((n, 3))
+    x[10], x[14] = 3.0, -1.0
+    valid = np.zeros(n, bool)
+    valid[[10, 14]] = True
+    w = signal.get_window("hann", n)
+    m = valid.astype(float)
+    assert 0 < (w * m) @ (w * m) < 0.1
+    fb = RollingSTFT(cfg).push(x, valid)
+    mean = x[valid].mean(axis=0)
+    _, ref = signal.periodogram((x - mean) * m[:, None], FS, window=w, detrend=False, axis=0)
+    ref *= (w @ w) / ((w * m) @ (w * m))
+    assert ref.max() > 0
+    np.testing.assert_allclose(fb.psd[0], ref, rtol=1e-9)
 
 
 @pytest.mark.parametrize("name", ["flattop", "blackman", "hamming"])
