@@ -14,6 +14,8 @@ examples:
   spinrig replay FILE --headless                  a capture through the same pipeline
   spinrig analyze FILE --report DIR               modes, RPM bands, imbalance of a sweep
   spinrig sweep PORT --ramp 10:60:30 --capture F  spin the motors through a throttle ramp
+  spinrig baseline save AIRFRAME FILE             keep a known-good sweep in the logbook
+  spinrig compare AIRFRAME FILE                   rebuild check: pass, warn or fail
   spinrig ports                list serial ports
   spinrig sim quillback7       a simulated flight controller on a pty
 
@@ -410,6 +412,9 @@ def build_parser() -> argparse.ArgumentParser:
     _add_tap(sub)
     _add_analyze(sub)
     _add_sweep(sub)
+    from .logbook.commands import add_parsers
+
+    add_parsers(sub, bounded)
     _add_ports(sub)
     _add_sim(sub)
     return parser

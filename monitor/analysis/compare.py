@@ -279,8 +279,9 @@ def _level_findings(tol: Tolerances, bl: list[dict], cl: list[dict]) -> tuple[li
             if d <= tol.rise_warn_db or (d <= tol.rise_fail_db and typical < 0.5 * tol.rise_warn_db):
                 continue  # one band up and the axis as a whole not: run-to-run spread
             sev = "fail" if d > tol.rise_fail_db else "warn"
+            was, now = r["baseline_rms_dps"], r["candidate_rms_dps"]
             out.append(Finding(sev, "level", f"{axis} vibration at {r['span']} rose {d:.1f} dB "
-                                             f"({r['baseline_rms_dps']:.3f} -> {r['candidate_rms_dps']:.3f} deg/s RMS)"))
+                                             f"({was:.3f} -> {now:.3f} deg/s RMS)"))
     for r in rows:
         del r["span"]
     return out, rows, notes
