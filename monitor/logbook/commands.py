@@ -324,7 +324,8 @@ def add_parsers(sub, bounded) -> None:
 
     p = sub.add_parser("runs", help="every stored run of an airframe", description="List AIRFRAME's runs in "
                        "the logbook: number, when stored, baseline or verdict, modes found, file and bench.",
-                       epilog="example:\n  spinrig runs 'Brisling 5 #2'", formatter_class=argparse.RawDescriptionHelpFormatter)
+                       epilog="example:\n  spinrig runs 'Brisling 5 #2'",
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("airframe", metavar="AIRFRAME")
     p.add_argument("--json", action="store_true")
     _logbook_arg(p)
