@@ -357,3 +357,24 @@ def test_mode_states_name_the_worst_group_and_its_motors():
     _feed(w, np.array([[_rpm(40.0), _rpm(-35.0)]]))
     (s,) = w.mode_states()
     assert s["state"] == "clear" and s["motors"] == [2] and s["motor"] == 2  # the nearest order
+
+
+def test_the_json_of_events_bands_and_readings_keeps_its_stated_precision():
+    # the JSON lines are what a person files and a script reads: each figure rounded to the places
+    # the field promises (Hz to 0.01, RPM to 0.1, dB to 0.01, seconds to 0.1 ms / 1 ms), no coarser
+    from monitor.crossing import CrossingEvent, MotorReading, ObservedBand
+
+    m = MotorReading(2, 12345.678, 205.7777, "crossing")
+    assert m.as_dict() == {"motor": 2, "rpm": 12345.7, "order_hz": 205.78, "state": "crossing"}
+    e = CrossingEvent(1.234567, "crossing", "nearing", "arm flap", 178.1234, 1.0, "1x", 2, 10687.456, 178.1243,
+                      -3.14159, -20.0, (10366.66, 11007.77), (10500.04, 10870.06), (m,), "why", True)
+    d = e.as_dict()
+    assert (d["t_s"], d["mode_hz"], d["rpm"], d["order_hz"], d["level_db"], d["over_floor_db"]) == \
+        (1.2346, 178.12, 10687.5, 178.12, -3.14, 16.86)
+    assert d["predicted_rpm"] == [10366.7, 11007.8] and d["watch_rpm"] == [10500.0, 10870.1]
+    assert d["motors"] == [m.as_dict()] and d["rpm_estimated"] is True and d["previous"] == "nearing"
+    b = ObservedBand("arm flap", 178.1234, 1.0, "1x", (1, 2), 10400.04, 10990.06, -2.3456, (10366.66, 11007.77),
+                     3, 1.23456, float("nan"))
+    bd = b.as_dict()
+    assert (bd["mode_hz"], bd["observed_rpm"], bd["predicted_rpm"], bd["peak_db"], bd["t_start_s"], bd["t_end_s"]) \
+        == (178.12, [10400.0, 10990.1], [10366.7, 11007.8], -2.35, 1.235, None)
