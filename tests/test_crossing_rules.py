@@ -373,8 +373,8 @@ def test_the_json_of_events_bands_and_readings_keeps_its_stated_precision():
         (1.2346, 178.12, 10687.5, 178.12, -3.14, 16.86)
     assert d["predicted_rpm"] == [10366.7, 11007.8] and d["watch_rpm"] == [10500.0, 10870.1]
     assert d["motors"] == [m.as_dict()] and d["rpm_estimated"] is True and d["previous"] == "nearing"
-    b = ObservedBand("arm flap", 178.1234, 1.0, "1x", (1, 2), 10400.04, 10990.06, -2.3456, (10366.66, 11007.77),
+    b = ObservedBand("arm flap", 178.1234, 1.0, "1x", (1, 2), 10400.44, 10990.06, -2.3456, (10366.66, 11007.77),
                      3, 1.23456, float("nan"))
     bd = b.as_dict()
     assert (bd["mode_hz"], bd["observed_rpm"], bd["predicted_rpm"], bd["peak_db"], bd["t_start_s"], bd["t_end_s"]) \
-        == (178.12, [10400.0, 10990.1], [10366.7, 11007.8], -2.35, 1.235, None)
+        == (178.12, [10400.4, 10990.1], [10366.7, 11007.8], -2.35, 1.235, None)
