@@ -87,3 +87,15 @@ def judge_items(items: list, profile, **config):
         events += eng.feed(chunk)
     events += eng.flush()
     return eng, events
+
+
+def run_spinrig(*args: str, env: dict | None = None, timeout: float = 300):
+    """``spinrig ARGS`` in a child process (``python -m monitor``), output captured as text;
+    ``env`` adds to (or, with None values, removes from) this process's environment."""
+    import subprocess
+    import sys
+
+    full = {**os.environ, **(env or {})}
+    full = {k: v for k, v in full.items() if v is not None}
+    return subprocess.run([sys.executable, "-m", "monitor", *args], capture_output=True, text=True, env=full,
+                          timeout=timeout)

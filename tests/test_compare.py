@@ -8,9 +8,6 @@ from __future__ import annotations
 import itertools
 import json
 import math
-import os
-import subprocess
-import sys
 
 import numpy as np
 import pytest
@@ -23,7 +20,7 @@ from monitor.analysis.summary import band_levels, summarise
 from monitor.analysis.sweep import analyse
 from monitor.analysis.tolerances import ToleranceError, Tolerances, load_tolerances
 from simulators.scenario import load_scenario
-from tests.conftest import examples
+from tests.conftest import examples, run_spinrig
 from tests.sim_helpers import sweep_capture
 
 
@@ -182,40 +179,36 @@ def test_the_bad_prop_names_its_motor(runs):
 
 # --- the command ---------------------------------------------------------------------------------
 
-def _spinrig(*args, env=None):
-    return subprocess.run([sys.executable, "-m", "monitor.cli", *args], capture_output=True, text=True,
-                          env={**os.environ, **(env or {})}, timeout=300)
-
 
 def test_compare_exit_codes_save_and_json(runs, tmp_path):
     env = {"SPINRIG_LOGBOOK": str(tmp_path / "book.sqlite")}
     stock, seed2 = runs[("brisling5", 1, False)][0], runs[("brisling5", 2, False)][0]
     cracked = runs[("brisling5_cracked_arm", 1, False)][0]
-    assert _spinrig("baseline", "save", "Brisling 5 #2", str(stock), "--blades", "3", env=env).returncode == 0
-    p = _spinrig("compare", "Brisling 5 #2", str(seed2), env=env)
+    assert run_spinrig("baseline", "save", "Brisling 5 #2", str(stock), "--blades", "3", env=env).returncode == 0
+    p = run_spinrig("compare", "Brisling 5 #2", str(seed2), env=env)
     assert p.returncode == 0 and "rebuild check: PASS" in p.stdout, p.stdout + p.stderr
-    p = _spinrig("compare", "Brisling 5 #2", str(cracked), "--save", "--json", env=env)
+    p = run_spinrig("compare", "Brisling 5 #2", str(cracked), "--save", "--json", env=env)
     assert p.returncode == 1, p.stderr
     d = json.loads(p.stdout)
     assert d["verdict"] == "fail" and d["saved_run"] == 2 and d["baseline"] == "Brisling 5 #2 run 1"
-    runs_out = _spinrig("runs", "Brisling 5 #2", "--json", env=env)
+    runs_out = run_spinrig("runs", "Brisling 5 #2", "--json", env=env)
     assert [(r["id"], r["verdict"]) for r in json.loads(runs_out.stdout)["runs"]] == [(1, None), (2, "fail")]
-    p = _spinrig("compare", "Brisling 5 #2@1", "Brisling 5 #2@2", env=env)  # both stored
+    p = run_spinrig("compare", "Brisling 5 #2@1", "Brisling 5 #2@2", env=env)  # both stored
     assert p.returncode == 1 and "dropped" in p.stdout
     strict = tmp_path / "strict.toml"
     strict.write_text("[modes]\ndrop_warn_pct = 0.01\ndrop_fail_pct = 50\n")
-    p = _spinrig("compare", str(stock), str(seed2), "--blades", "3", "--tolerances", str(strict), env=env)
+    p = run_spinrig("compare", str(stock), str(seed2), "--blades", "3", "--tolerances", str(strict), env=env)
     assert p.returncode == 3 and "rebuild check: WARN" in p.stdout
     for args, msg in ((["Nobody", str(seed2)], "Nobody: no such file, and logbook"),
                       (["Brisling 5 #2@x", str(seed2)], "'x' is not a run number"),
                       (["Brisling 5 #2", str(tmp_path / "none.spinrec")], "none.spinrec: no such file"),
                       (["Brisling 5 #2", str(seed2), "--tolerances", str(tmp_path / "no.toml")], "no.toml"),
                       ([str(stock), str(seed2), "--save"], "--save stores a candidate file")):
-        p = _spinrig("compare", *args, env=env)
+        p = run_spinrig("compare", *args, env=env)
         assert p.returncode == 2 and p.stderr.count("\n") == 1 and msg in p.stderr, (args, p.stderr)
     garbage = tmp_path / "garbage.spinrec"
     garbage.write_bytes(b"\x00" * 100)
-    p = _spinrig("compare", "Brisling 5 #2", str(garbage), env=env)
+    p = run_spinrig("compare", "Brisling 5 #2", str(garbage), env=env)
     assert p.returncode == 2 and p.stderr.count("\n") == 1 and "garbage.spinrec" in p.stderr
 
 

@@ -9,8 +9,6 @@ import multiprocessing as mp
 import os
 import shutil
 import sqlite3
-import subprocess
-import sys
 
 import numpy as np
 import pytest
@@ -18,6 +16,7 @@ import pytest
 from monitor.analysis.summary import RunSummary
 from monitor.logbook.errors import LogbookError
 from monitor.logbook.store import Logbook
+from tests.conftest import run_spinrig
 from tests.pg_server import PgServer, fresh_database, pg_bin
 
 
@@ -203,17 +202,10 @@ def test_bad_logbook_urls_are_one_line_errors():
         Logbook("postgresql://spinrig@127.0.0.1:1/none")  # nothing listens on port 1
 
 
-def _spinrig(*args, env=None):
-    return subprocess.run([sys.executable, "-m", "monitor.cli", *args], capture_output=True, text=True,
-                          env={**os.environ, **(env or {})}, timeout=300)
-
 
 def test_the_default_logbook_lives_in_the_users_data_directory(tmp_path):
-    env = {"HOME": str(tmp_path), "XDG_DATA_HOME": str(tmp_path / "data")}
-    env.pop("SPINRIG_LOGBOOK", None)
-    e = {k: v for k, v in os.environ.items() if k != "SPINRIG_LOGBOOK"}
-    p = subprocess.run([sys.executable, "-m", "monitor.cli", "baseline", "list"], capture_output=True, text=True,
-                       env={**e, **env}, timeout=120)
+    env = {"HOME": str(tmp_path), "XDG_DATA_HOME": str(tmp_path / "data"), "SPINRIG_LOGBOOK": None}
+    p = run_spinrig("baseline", "list", env=env, timeout=120)
     assert p.returncode == 0, p.stderr
     assert (tmp_path / "data" / "spinrig" / "logbook.sqlite").exists()
     assert "0 airframes" in p.stdout
@@ -225,18 +217,18 @@ def test_baseline_and_runs_commands_on_a_simulated_sweep(tmp_path, book_spec):
     cap = tmp_path / "stock.spinrec"
     sweep_capture(cap, "pipit3", seed=1)
     env = {"SPINRIG_LOGBOOK": book_spec}
-    p = _spinrig("baseline", "save", "Pipit 3 #1", str(cap), "--blades", "2", "--note", "stock", env=env)
+    p = run_spinrig("baseline", "save", "Pipit 3 #1", str(cap), "--blades", "2", "--note", "stock", env=env)
     assert p.returncode == 0, p.stderr
     assert "run 1 is the baseline now" in p.stdout
-    p = _spinrig("baseline", "show", "Pipit 3 #1", "--json", env=env)
+    p = run_spinrig("baseline", "show", "Pipit 3 #1", "--json", env=env)
     d = json.loads(p.stdout)
     assert d["run"] == 1 and d["notes"] == "stock" and d["analysis"]["modes"]
     assert {lv["by"] for lv in d["analysis"]["levels"]} == {"throttle"}
-    p = _spinrig("runs", "Pipit 3 #1", env=env)
+    p = run_spinrig("runs", "Pipit 3 #1", env=env)
     assert p.returncode == 0 and "baseline" in p.stdout and "stock.spinrec" in p.stdout
-    p = _spinrig("runs", "Nobody", env=env)
+    p = run_spinrig("runs", "Nobody", env=env)
     assert p.returncode == 2 and p.stderr.count("\n") == 1 and "no airframe 'Nobody'" in p.stderr
     broken = tmp_path / "broken.sqlite"
     shutil.copy(__file__, broken)
-    p = _spinrig("baseline", "list", "--logbook", str(broken))
+    p = run_spinrig("baseline", "list", "--logbook", str(broken))
     assert p.returncode == 2 and p.stderr.count("\n") == 1 and "not an SQLite database" in p.stderr

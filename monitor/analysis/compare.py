@@ -120,6 +120,8 @@ def _mode_findings(tol: Tolerances, base: list[dict], cand: list[dict], names) -
     pairs = []
     paired_b = {i for i, _ in pairs_idx}
     paired_c = {j for _, j in pairs_idx}
+    missing = [dict(m) for i, m in enumerate(base) if i not in paired_b]
+    new = [dict(m) for j, m in enumerate(cand) if j not in paired_c]
     for i, j in pairs_idx:
         b, c = base[i], cand[j]
         shift = c["freq_hz"] - b["freq_hz"]
@@ -133,8 +135,7 @@ def _mode_findings(tol: Tolerances, base: list[dict], cand: list[dict], names) -
                       "baseline_damping": b.get("damping_ratio"), "candidate_damping": c.get("damping_ratio"),
                       "damping_change_pct": None if dz is None else round(dz, 1), "label": label})
         span = f"from {b['freq_hz']:.1f} to {c['freq_hz']:.1f} Hz ({pct:+.1f} %)"
-        if _one_side_merged(b, c, [m for k, m in enumerate(base) if k not in paired_b],
-                            [m for k, m in enumerate(cand) if k not in paired_c]):
+        if _one_side_merged(b, c, missing, new):
             pairs[-1]["judged"] = False
             if abs(pct) > tol.drop_warn_pct:
                 out.append(Finding("note", "mode_shift", f"{label} reads {span}, but a close pair reads as one mode "
@@ -159,37 +160,34 @@ def _mode_findings(tol: Tolerances, base: list[dict], cand: list[dict], names) -
             out.append(Finding("warn", "damping", f"{label} at {c['freq_hz']:.1f} Hz: damping ratio "
                                                   f"{100 * b['damping_ratio']:.1f} % -> {100 * c['damping_ratio']:.1f} "
                                                   f"% ({dz:+.0f} %): {how}"))
-    missing = [dict(m) for i, m in enumerate(base) if i not in paired_b]
-    new = [dict(m) for j, m in enumerate(cand) if j not in paired_c]
-    partner_c = {i: cand[j] for i, j in pairs_idx}
-    partner_b = {j: base[i] for i, j in pairs_idx}
-    for m in missing:
-        merged = _merged_into(m, base, partner_c)
-        if merged is not None:
-            out.append(Finding("note", "mode_missing",
-                               f"the baseline's {m['freq_hz']:.1f} Hz {m['axis']} mode and its close neighbour read "
-                               f"as one mode at {merged['freq_hz']:.1f} Hz in the candidate (a close pair the sweep "
-                               "did not separate)"))
-            continue
-        strong = m.get("prominence_db", 0.0) >= tol.missing_mode_db
-        out.append(Finding("warn" if strong else "note", "mode_missing",
-                           f"the baseline's {m['freq_hz']:.1f} Hz {m['axis']} mode ({m.get('prominence_db', 0):.1f} dB "
-                           "over the floor) is not in the candidate: merged with a neighbour, moved out of the swept "
-                           "range, or damped by the rebuild"))
-    for m in new:
-        merged = _merged_into(m, cand, partner_b)
-        if merged is not None:
-            out.append(Finding("note", "mode_new",
-                               f"the candidate's {m['freq_hz']:.1f} Hz {m['axis']} mode and its close neighbour read "
-                               f"as one mode at {merged['freq_hz']:.1f} Hz in the baseline (a close pair the sweep "
-                               "did not separate)"))
-            continue
-        strong = m.get("prominence_db", 0.0) >= tol.new_mode_db
-        out.append(Finding("warn" if strong else "note", "mode_new",
-                           f"a new {m['axis']} mode at {m['freq_hz']:.1f} Hz ({m.get('prominence_db', 0):.1f} dB over "
-                           "the floor): a part that came loose or was added (stack, camera, antenna, battery strap); "
-                           "tap the frame to find it"))
+    out += _unpaired_findings(missing, base, {i: cand[j] for i, j in pairs_idx}, "baseline", tol.missing_mode_db)
+    out += _unpaired_findings(new, cand, {j: base[i] for i, j in pairs_idx}, "candidate", tol.new_mode_db)
     return out, pairs, new, missing
+
+
+def _unpaired_findings(lone: list[dict], side: list[dict], partner: dict, who: str, strong_db: float) -> list:
+    """Findings for the modes of one run (``who``: baseline or candidate) the other run has no
+    partner for: a close pair read as one there is a note; else a missing (baseline) or new
+    (candidate) mode, a warning when it stands ``strong_db`` over the floor."""
+    other = "candidate" if who == "baseline" else "baseline"
+    kind = "mode_missing" if who == "baseline" else "mode_new"
+    out = []
+    for m in lone:
+        merged = _merged_into(m, side, partner)
+        if merged is not None:
+            out.append(Finding("note", kind, f"the {who}'s {m['freq_hz']:.1f} Hz {m['axis']} mode and its close "
+                                             f"neighbour read as one mode at {merged['freq_hz']:.1f} Hz in the "
+                                             f"{other} (a close pair the sweep did not separate)"))
+            continue
+        prom = m.get("prominence_db", 0.0)
+        if who == "baseline":
+            text = (f"the baseline's {m['freq_hz']:.1f} Hz {m['axis']} mode ({prom:.1f} dB over the floor) is not in "
+                    "the candidate: merged with a neighbour, moved out of the swept range, or damped by the rebuild")
+        else:
+            text = (f"a new {m['axis']} mode at {m['freq_hz']:.1f} Hz ({prom:.1f} dB over the floor): a part that "
+                    "came loose or was added (stack, camera, antenna, battery strap); tap the frame to find it")
+        out.append(Finding("warn" if prom >= strong_db else "note", kind, text))
+    return out
 
 
 def _one_side_merged(b: dict, c: dict, lone_b: list[dict], lone_c: list[dict]) -> bool:

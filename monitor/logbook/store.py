@@ -291,14 +291,19 @@ class Logbook:
         with self._tx() as c:
             return [dict(row._mapping) for row in c.execute(q)]
 
+    def _known(self, c, airframe: str) -> tuple[int, int | None]:
+        """(airframe id, its baseline run or None) of an airframe that must exist."""
+        aid = self._airframe_id(c, airframe, create=False)
+        if aid is None:
+            raise LogbookError(f"logbook {self.name}: no airframe {airframe!r} (spinrig baseline list)")
+        base = c.execute(sa.select(T.baselines.c.run_id).where(T.baselines.c.airframe_id == aid)).scalar()
+        return aid, base
+
     def runs(self, airframe: str) -> list[dict]:
         """The runs of ``airframe``, oldest first, each with ``baseline`` True for its baseline."""
         r = T.runs
         with self._tx() as c:
-            aid = self._airframe_id(c, airframe, create=False)
-            if aid is None:
-                raise LogbookError(f"logbook {self.name}: no airframe {airframe!r} (spinrig baseline list)")
-            base = c.execute(sa.select(T.baselines.c.run_id).where(T.baselines.c.airframe_id == aid)).scalar()
+            aid, base = self._known(c, airframe)
             rows = c.execute(sa.select(r.c.id, r.c.source, r.c.source_sha256, r.c.recorded_at, r.c.stored_at,
                                        r.c.bench, r.c.notes, r.c.verdict, r.c.analysis)
                              .where(r.c.airframe_id == aid).order_by(r.c.id)).all()
@@ -321,10 +326,7 @@ class Logbook:
         """(the run's row, its summary): the baseline when ``run_id`` is None."""
         r = T.runs
         with self._tx() as c:
-            aid = self._airframe_id(c, airframe, create=False)
-            if aid is None:
-                raise LogbookError(f"logbook {self.name}: no airframe {airframe!r} (spinrig baseline list)")
-            base = c.execute(sa.select(T.baselines.c.run_id).where(T.baselines.c.airframe_id == aid)).scalar()
+            aid, base = self._known(c, airframe)
             if run_id is None:
                 run_id = base
                 if run_id is None:
