@@ -226,3 +226,14 @@ def test_the_compare_report_renders_in_a_browser(runs, tmp_path):
     result = page_check(page)
     assert result["images"] == 2 and result["bad"] == 0 and result["over"] == 0 and result["scroll"] <= 1280
     assert json.loads((tmp_path / "out" / "compare.json").read_text())["verdict"] == "fail"
+
+
+def test_a_candidate_that_swept_less_of_the_range_warns_and_its_notes_are_kept():
+    base = {"modes": [mode(200.0)], "rpm_swept": [4000, 24000], "notes": []}
+    cand = {"modes": [mode(200.0)], "rpm_swept": [4000, 12000], "notes": ["capture cut at byte 300000"]}
+    c = compare(base, cand)
+    assert c.verdict == "warn"
+    cov = [f for f in c.findings if f.kind == "coverage"]
+    assert len(cov) == 1 and "only 40 % of the baseline's range" in cov[0].text
+    assert "candidate: capture cut at byte 300000" in c.notes
+    assert compare(base, dict(cand, rpm_swept=[4500, 23000])).verdict == "pass"  # 92 %: a full check

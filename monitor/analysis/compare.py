@@ -311,6 +311,22 @@ def _imbalance_findings(tol: Tolerances, bi: dict, ci: dict) -> tuple[list, list
     return out, rows, notes
 
 
+COVERAGE_SHARE = 0.8  #: the candidate must sweep this share of the baseline's RPM range for a full check
+
+
+def _coverage_findings(sb, sc) -> list[Finding]:
+    """A warning when the candidate swept much less of the baseline's RPM range (a cut file, a
+    shorter plan): modes and bands outside it are not compared, whatever else the check says."""
+    if not sb or not sc or sb[1] <= sb[0]:
+        return []
+    share = max(0.0, min(sb[1], sc[1]) - max(sb[0], sc[0])) / (sb[1] - sb[0])
+    if share >= COVERAGE_SHARE:
+        return []
+    return [Finding("warn", "coverage", f"the candidate swept {sc[0]}-{sc[1]} RPM and the baseline {sb[0]}-{sb[1]}: "
+                                        f"only {100 * share:.0f} % of the baseline's range was compared; sweep the "
+                                        "same range (the same plan) for a full check")]
+
+
 def compare(base: dict, cand: dict, tol: Tolerances | None = None, names: list[tuple[float, str]] = ()) -> Comparison:
     """Judge ``cand`` against ``base`` (analysis dicts of :func:`monitor.analysis.summary.summarise`).
     ``names`` [(Hz, name)]: a profile's modes, to name the modes found."""
@@ -326,7 +342,9 @@ def compare(base: dict, cand: dict, tol: Tolerances | None = None, names: list[t
     cf, crossings = _crossing_findings(tol, pairs, base.get("bands", []), cand.get("bands", []))
     lf, levels, ln = _level_findings(tol, base.get("levels", []), cand.get("levels", []))
     imf, imb, imn = _imbalance_findings(tol, base.get("imbalance", {}), cand.get("imbalance", {}))
-    findings = mf + cf + lf + imf
+    findings = mf + cf + lf + imf + _coverage_findings(base.get("rpm_swept"), cand.get("rpm_swept"))
+    for who, side in (("baseline", base), ("candidate", cand)):
+        notes += [f"{who}: {n}" for n in side.get("notes", [])]  # a cut file, lost blocks, estimated speeds
     findings.sort(key=lambda f: -SEVERITY[f.severity])
     worst = max((SEVERITY[f.severity] for f in findings), default=0)
     verdict = {2: "fail", 1: "warn", 0: "pass"}[worst]
