@@ -787,7 +787,8 @@ def test_a_link_turning_noisy_mid_sweep_aborts(cdev):
     link, ctl = _controller(cable.path, _plan_with({"link_errors_per_s": 5}))
     try:
         ctl.start()
-        _wait(lambda: ctl.progress.max_commanded > 11.0, what="the motors commanded")
+        _wait(lambda: ctl.progress.max_commanded > 11.0 or ctl.report is not None, what="the motors commanded")
+        assert ctl.report is None, f"stopped before the cable went bad: {ctl.report.why}"
         cable.garble(40)
         report = ctl.join(timeout=20)
         assert "bad frames a second on the link, over the limit of 5" in report.why

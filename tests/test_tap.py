@@ -97,6 +97,34 @@ def test_a_double_tap_a_clipped_tap_and_a_short_decay_are_not_used():
     assert [t.usable for t in short] == [True, False] and "too short" in short[1].why
 
 
+def test_a_light_tap_is_found_and_a_long_decay_is_one_tap():
+    # a tap whose largest sample stands only about 15 times over the background's typical summed
+    # rate (a light tap, or an arm the gyro hears poorly) is still a tap: its power over a few
+    # milliseconds stands far over the background's, whose short-time average is a chi-square mean
+    from monitor.analysis.taps import find_taps
+
+    fs = 8000.0
+    x = np.random.default_rng(5).normal(0, 0.5, (int(3 * fs), 3))
+    t = np.arange(int(1.5 * fs)) / fs
+    floor = np.median(np.abs(x).sum(axis=1))
+    light = 15 * floor / 2 * np.exp(-0.03 * 2 * np.pi * 180 * t) * np.sin(2 * np.pi * 180 * t)
+    x[8000:8000 + t.size, 0] += light
+    x[8000:8000 + t.size, 1] += light
+    assert np.abs(x).sum(axis=1).max() < 20 * floor  # the single-sample rule of old missed it
+    (i,) = find_taps(x, fs)
+    assert 8000 <= i <= 8000 + int(0.0015 * fs)  # the peak of the first half-period (1/4 of 5.6 ms)
+    # a strong, lightly damped decay (96 Hz, zeta 1.2 %: time constant 138 ms) stays over the
+    # threshold for longer than the 0.5 s tap spacing: it is still one tap, not two
+    y = np.random.default_rng(6).normal(0, 0.5, (int(3 * fs), 3))
+    y[4000:4000 + t.size, 1] += 2000 * np.exp(-0.012 * 2 * np.pi * 96 * t) * np.sin(2 * np.pi * 96 * t)
+    (j,) = find_taps(y, fs)
+    assert abs(j - (4000 + fs / (4 * 96))) <= 1  # the first crest, a quarter period in
+    # background alone, with a gyro offset on each axis: no tap, over many seeds
+    for seed in range(20):
+        z = np.random.default_rng(seed).normal(0, 0.5, (int(2 * fs), 3)) + [3.0, -2.0, 0.5]
+        assert find_taps(z, fs).size == 0
+
+
 SCENARIOS = ["quillback7", "quillback7_braced", "brisling5", "brisling5_loose_stack", "pipit3"]
 
 
@@ -149,20 +177,23 @@ def test_spinrig_tap_writes_a_profile_the_watch_uses(tap_runs, tmp_path):
 
 def test_a_live_tap_session_on_a_simulated_frame():
     # sim:// in real time with its script off (motors still): spinrig asks for each tap and, the
-    # device being simulated, taps the frame itself; every decay is caught and judged
-    p = subprocess.run([sys.executable, "-m", "monitor", "tap", "sim://quillback7?script=0&seed=3", "--taps", "3",
-                        "--json"], capture_output=True, text=True, timeout=240, cwd=ROOT)
+    # device being simulated, taps the frame itself; every decay is caught and judged. Five taps
+    # (the default: each arm once, then the first again), as a person would be asked for
+    p = subprocess.run([sys.executable, "-m", "monitor", "tap", "sim://quillback7?script=0&seed=3", "--json"],
+                       capture_output=True, text=True, timeout=240, cwd=ROOT)
     assert p.returncode == 0, p.stderr
     out = json.loads(p.stdout)
-    assert [t["tap"] for t in out["taps"]] == [1, 2, 3] and all(t["usable"] for t in out["taps"])
-    assert p.stderr.count("tap the frame near the tip of arm") == 3 and p.stderr.count("caught:") == 3
+    assert [t["tap"] for t in out["taps"]] == [1, 2, 3, 4, 5] and all(t["usable"] for t in out["taps"])
+    assert p.stderr.count("tap the frame near the tip of arm") == 5 and p.stderr.count("caught:") == 5
+    assert "no tap seen" not in p.stderr
     times = [t["t_s"] for t in out["taps"]]
-    assert times == sorted(times) and len(set(times)) == 3
+    assert times == sorted(times) and len(set(times)) == 5
     sc_modes = [118.0, 131.0, 187.0, 244.0, 312.0, 405.0]  # the scenario's true modes
-    # (real time: where in the stream each tap falls differs from run to run; the accuracy promise
-    # is tested on recorded taps above, here every mode is a true one within 1 %)
-    assert all(min(abs(m["freq_hz"] / f - 1) for f in sc_modes) < 0.01 for m in out["modes"]), out["modes"]
-    assert len(out["modes"]) >= 5, out["modes"]
+    # where in the stream each tap falls differs from run to run (real time), so the noise under
+    # each decay does too; the recorded taps above hold the same 0.5 %, which five taps meet
+    # (per tap, the 6 % mode at 312 Hz scatters up to 1.3 %: 40 taps over 8 seeds, measured)
+    assert all(min(abs(m["freq_hz"] / f - 1) for f in sc_modes) <= 0.005 for m in out["modes"]), out["modes"]
+    assert sorted(min(sc_modes, key=lambda f: abs(m["freq_hz"] - f)) for m in out["modes"]) == sc_modes
 
 
 def test_the_fitted_curve_of_exact_modes_is_the_decay_itself():

@@ -29,7 +29,9 @@ DECAY_S = 0.6  #: the longest stretch of a decay analysed, s
 MIN_DECAY_S = 0.25  #: a shorter decay is not usable
 SKIP_S = 0.002  #: the impulse itself is skipped
 SHORT_S = 0.08  #: the start of a decay is also analysed alone (modes that die out within it)
-TAP_OVER = 20.0  #: a tap's envelope stands this many times over the record's median envelope
+TAP_OVER = 50.0  #: a tap's short-time power stands this many times over the record's median power
+TAP_WINDOW_S = 0.003  #: ... averaged over this long (at least 8 samples)
+TAP_REARM = 5.0  #: the next tap counts only once the power fell under this many times the median
 TAP_SPACING_S = 0.5  #: peaks closer than this are one tap (or a double tap)
 DOUBLE_SHARE = 0.3  #: a second impulse this large (share of the first) inside a decay spoils it
 RISE = 2.5  #: ... when the level also jumps this many times over the 50 ms before it
@@ -74,20 +76,42 @@ class TapMode:
 
 
 def find_taps(x: np.ndarray, fs: float) -> np.ndarray:
-    """Sample indices of the taps in ``x`` (n, 3) deg/s at ``fs`` Hz: where the summed rate first
-    stands :data:`TAP_OVER` times over its median, at least :data:`TAP_SPACING_S` after the
-    previous tap began (a second impulse sooner is a double tap inside the first decay); the
-    index is the envelope's peak within 5 ms of that onset."""
+    """Sample indices of the taps in ``x`` (n, 3) deg/s at ``fs`` Hz.
+
+    The short-time power (the squared rate summed over the axes, each axis less its median,
+    averaged over the last :data:`TAP_WINDOW_S`) of a tap first stands :data:`TAP_OVER` times
+    over the record's median short-time power, at least :data:`TAP_SPACING_S` after the previous
+    tap began (a second impulse sooner is a double tap inside the first decay) and after the
+    power fell back under :data:`TAP_REARM` times the median (a lightly damped decay that ripples
+    about the threshold for a second is one tap); the index is the
+    summed rate's peak within one window either side of that onset.
+
+    Why power over a window and not one sample's rate: a light tap, or one on an arm the
+    gyro hears poorly, may peak at only 15 to 20 times the background in one sample, where single
+    noise samples also reach a few times it; over 24 or more values (8 samples, 3 axes) the
+    background's power is a chi-square average that stays within about 3 times its median (the
+    0.9999999 quantile of chi-square with 24 degrees of freedom over 24 is under 3.6), so 50
+    times its median is a tap and nothing else, while a tap's power stands hundreds of times over.
+    """
+    x = np.asarray(x, dtype=float)
+    if x.shape[0] == 0:
+        return np.zeros(0, dtype=np.int64)
+    x = x - np.median(x, axis=0)
     e = np.abs(x).sum(axis=1)
-    floor = max(float(np.median(e)), 1e-9)
-    over = np.flatnonzero(e > TAP_OVER * floor)
-    starts = []
+    w = max(8, int(round(TAP_WINDOW_S * fs)))
+    c = np.concatenate(([0.0], np.cumsum((x * x).sum(axis=1))))
+    lo = np.maximum(np.arange(1, x.shape[0] + 1) - w, 0)
+    power = (c[1:] - c[lo]) / w  # mean over the last w samples (fewer at the start)
+    floor = max(float(np.median(power)), 1e-18)
+    above = power > TAP_OVER * floor
+    over = np.flatnonzero(above & ~np.concatenate(([False], above[:-1])))  # where it rises over
+    quiet = np.concatenate(([0], np.cumsum(power < TAP_REARM * floor)))  # quiet[i]: quiet samples before i
+    starts: list[int] = []
     spacing = int(TAP_SPACING_S * fs)
     for i in over.tolist():
-        if not starts or i - starts[-1] >= spacing:
+        if not starts or (i - starts[-1] >= spacing and quiet[i] > quiet[starts[-1]]):
             starts.append(i)
-    w = max(1, int(0.005 * fs))
-    return np.array([i + int(np.argmax(e[i: i + w])) for i in starts], dtype=np.int64)
+    return np.array([max(0, i - w) + int(np.argmax(e[max(0, i - w): i + w])) for i in starts], dtype=np.int64)
 
 
 def _second_impulse(seg: np.ndarray, fs: float) -> bool:

@@ -154,10 +154,13 @@ class Serial(SerialBase):
     def read(self, size: int = 1) -> bytes:
         if not self.is_open:
             raise PortNotOpenError()
+        # as pyserial's POSIX port does: wait for ``size`` bytes or the timeout, whichever comes
+        # first (returning whatever had arrived at once made a reader thread's every read a frame
+        # or two, a thousand queue entries a second where a real port gives one per timeout)
         deadline = None if self._timeout is None else time.monotonic() + self._timeout
         while True:
             self._pull()
-            if self._rx or size == 0:
+            if len(self._rx) >= size or size == 0:
                 break
             if self._timeout == 0 or (deadline is not None and time.monotonic() >= deadline):
                 break
@@ -166,8 +169,9 @@ class Serial(SerialBase):
                 if deadline is not None:
                     wait = min(wait, deadline - time.monotonic())
                 time.sleep(min(max(wait, 0.0005), 0.05))
-        out = bytes(self._rx[:size])
-        del self._rx[:size]
+        with self._lock:  # a write from another thread may add to _rx
+            out = bytes(self._rx[:size])
+            del self._rx[:size]
         return out
 
     def write(self, data) -> int:
@@ -177,14 +181,18 @@ class Serial(SerialBase):
         with self._lock:
             s = self._stream
             if s.options.realtime:
-                s.produce(self._now())  # the device reaches "now" before it sees the command
+                # the device reaches "now" before it sees the command; what it sent meanwhile waits
+                # to be read like everything else (it was once dropped here: every host write lost
+                # the frames produced since the last read)
+                self._rx += s.produce(self._now())
             s.receive(data)
         return len(data)
 
     def reset_input_buffer(self) -> None:
         if not self.is_open:
             raise PortNotOpenError()
-        self._rx.clear()
+        with self._lock:
+            self._rx.clear()
 
     def reset_output_buffer(self) -> None:
         if not self.is_open:
