@@ -41,8 +41,8 @@ def test_the_pairing_is_the_cheapest_assignment_by_brute_force(fb, fc):
     def ok(i, j):
         return abs(fc[j] / fb[i] - 1) <= 0.25
 
-    def cost(pairs):
-        return sum(abs(math.log(fc[j] / fb[i])) for i, j in pairs)
+    def cost(pairs):  # concave in the shift: fewer modes moved further are cheaper
+        return sum(math.sqrt(abs(math.log(fc[j] / fb[i]))) for i, j in pairs)
 
     assert all(ok(i, j) for i, j in got) and len({i for i, _ in got}) == len(got) == len({j for _, j in got})
     best_n, best_cost = 0, 0.0
@@ -146,7 +146,10 @@ def runs(tmp_path_factory):
 def test_the_same_airframe_twice_passes(runs, name):
     c = compare(runs[(name, 1, False)][1].analysis, runs[(name, 2, False)][1].analysis)
     assert c.verdict == "pass", [f.text for f in c.findings]
-    assert all(abs(p["shift_pct"]) < 1.0 for p in c.pairs)
+    # every mode within 1 %, or within three standard errors of the two fits (quillback7's weak,
+    # 6 % damped 312 Hz mode reads 320.9 and 317.5 Hz: -1.05 %, with 0.8 % uncertainty)
+    assert all(abs(p["shift_pct"]) < max(1.0, 3 * p["uncertainty_pct"]) for p in c.pairs)
+    assert all(p["uncertainty_pct"] < 1.5 for p in c.pairs)
 
 
 def test_the_cracked_arm_fails_naming_the_mode_that_dropped(runs):
@@ -155,17 +158,23 @@ def test_the_cracked_arm_fails_naming_the_mode_that_dropped(runs):
     fail = [f for f in c.findings if f.severity == "fail"]
     assert len(fail) == 1 and fail[0].kind == "mode_shift"
     truth = min(m.freq_hz for m in load_scenario("brisling5_cracked_arm").modes)  # the rear arm flap, 169 Hz
-    p = next(p for p in c.pairs if p["shift_pct"] < -3.0)
-    assert p["axis"] == "pitch" and p["candidate_hz"] == pytest.approx(truth, rel=0.02)
+    p = next(p for p in c.pairs if p["shift_pct"] < -3.0)  # 192 -> 169 Hz (-12 %): one mode, the right one
+    assert p["axis"] == "pitch" and p["candidate_hz"] == pytest.approx(truth, rel=0.01)
+    assert p["baseline_hz"] == pytest.approx(192.0, rel=0.01) and p["shift_pct"] == pytest.approx(-12.0, abs=1.0)
+    assert all(abs(q["shift_pct"]) < 1.0 for q in c.pairs if q is not p)  # the front flap, 178 Hz, stayed
     assert f"dropped from {p['baseline_hz']:.1f} to {p['candidate_hz']:.1f} Hz" in fail[0].text
 
 
 def test_the_braced_build_moves_its_modes_up_and_warns(runs):
     c = compare(runs[("quillback7", 1, False)][1].analysis, runs[("quillback7_braced", 1, False)][1].analysis)
     assert c.verdict == "warn"
-    assert all(p["shift_pct"] > 0 for p in c.pairs) and len(c.pairs) >= 3
+    judged = [p for p in c.pairs if p["judged"]]  # the weak 312 Hz mode moves within its uncertainty
+    assert all(p["shift_pct"] > 0 for p in judged) and len(judged) >= 5
     rose = [f for f in c.findings if f.kind == "mode_shift" and f.severity == "warn"]
-    assert len(rose) >= 2 and all(" rose from " in f.text for f in rose)
+    assert len(rose) >= 4 and all(" rose from " in f.text for f in rose)
+    # the close pair is two pairs now: 118 -> 139 and 131 -> 152 Hz (truth), each within 1 %
+    got = sorted((p["baseline_hz"], p["candidate_hz"]) for p in judged)[:2]
+    assert [round(b / 118.0, 2) for b, _ in got] == [1.0, 1.11] and [round(x / 139.0, 2) for _, x in got] == [1.0, 1.1]
 
 
 def test_the_bad_prop_names_its_motor(runs):
@@ -196,7 +205,7 @@ def test_compare_exit_codes_save_and_json(runs, tmp_path):
     p = run_spinrig("compare", "Brisling 5 #2@1", "Brisling 5 #2@2", env=env)  # both stored
     assert p.returncode == 1 and "dropped" in p.stdout
     strict = tmp_path / "strict.toml"
-    strict.write_text("[modes]\ndrop_warn_pct = 0.01\ndrop_fail_pct = 50\n")
+    strict.write_text("[modes]\ndrop_warn_pct = 0.01\ndrop_fail_pct = 50\nshift_sigmas = 0\n")
     p = run_spinrig("compare", str(stock), str(seed2), "--blades", "3", "--tolerances", str(strict), env=env)
     assert p.returncode == 3 and "rebuild check: WARN" in p.stdout
     for args, msg in ((["Nobody", str(seed2)], "Nobody: no such file, and logbook"),

@@ -3,9 +3,14 @@
 Pure functions over two :class:`monitor.analysis.summary.RunSummary` (their ``analysis`` dicts).
 
 Modes are paired by an assignment (the Hungarian method, Kuhn 1955, as
-``scipy.optimize.linear_sum_assignment``) on the cost |ln(f_c / f_b)| + 0.05 x the L1 distance
+``scipy.optimize.linear_sum_assignment``) on the cost sqrt|ln(f_c / f_b)| + 0.05 x the L1 distance
 of the two modes' axis participations (a roll mode does not turn into a yaw mode), pairs further
-apart than ``match_pct`` not allowed. Each pair gives the shift (Hz, %), the damping change and,
+apart than ``match_pct`` not allowed. The square root makes the cost concave in the shift: of two
+readings that move the same total distance, the one that moves fewer modes further is cheaper (a
+crack drops one mode and leaves its neighbour alone: the cracked arm's 178/192 Hz pair becoming
+169/178 Hz is one mode dropping 12 %, not two dropping 5 and 7 %). Each pair gives the shift
+(Hz, %), judged only when it stands more than ``shift_sigmas`` (3) standard errors of the two
+runs' fits (``freq_sd_hz``, in quadrature) clear of zero, the damping change and,
 where the same order crosses both, the change of the crossing's peak level (dB). Baseline modes
 left unpaired are missing, candidate ones new. Per-axis vibration levels are compared band by
 band (dB = 20 log10 of the RMS ratio), and per-motor imbalance figures motor by motor (ratio).
@@ -95,7 +100,8 @@ def match_modes(base: list[dict], cand: list[dict], match_pct: float) -> list[tu
     pc = np.array([_participation(m) for m in cand])
     qb = np.array([m.get("prominence_db", 0.0) for m in base], float)
     qc = np.array([m.get("prominence_db", 0.0) for m in cand], float)
-    cost = (np.abs(np.log(fc[None, :] / fb[:, None])) + AXIS_WEIGHT * np.abs(pb[:, None, :] - pc[None, :, :]).sum(2)
+    shift = np.sqrt(np.abs(np.log(fc[None, :] / fb[:, None])))  # concave: see the module docstring
+    cost = (shift + AXIS_WEIGHT * np.abs(pb[:, None, :] - pc[None, :, :]).sum(2)
             + PROMINENCE_WEIGHT * np.abs(qc[None, :] - qb[:, None]))
     allowed = np.abs(fc[None, :] / fb[:, None] - 1.0) <= match_pct / 100.0
     big = 1e6
@@ -135,6 +141,15 @@ def _mode_findings(tol: Tolerances, base: list[dict], cand: list[dict], names) -
                       "baseline_damping": b.get("damping_ratio"), "candidate_damping": c.get("damping_ratio"),
                       "damping_change_pct": None if dz is None else round(dz, 1), "label": label})
         span = f"from {b['freq_hz']:.1f} to {c['freq_hz']:.1f} Hz ({pct:+.1f} %)"
+        unsure = _uncertainty_pct(b, c)
+        pairs[-1]["uncertainty_pct"] = None if unsure is None else round(unsure, 2)
+        if unsure is not None and abs(pct) <= tol.shift_sigmas * unsure:
+            pairs[-1]["judged"] = False
+            if abs(pct) > tol.drop_warn_pct:
+                out.append(Finding("note", "mode_shift", f"{label} reads {span}, within the two runs' measurement "
+                                                         f"uncertainty ({tol.shift_sigmas:g} x {unsure:.1f} %, a weak "
+                                                         "or heavily damped mode): the shift is not judged"))
+            continue
         if _one_side_merged(b, c, missing, new):
             pairs[-1]["judged"] = False
             if abs(pct) > tol.drop_warn_pct:
@@ -163,6 +178,15 @@ def _mode_findings(tol: Tolerances, base: list[dict], cand: list[dict], names) -
     out += _unpaired_findings(missing, base, {i: cand[j] for i, j in pairs_idx}, "baseline", tol.missing_mode_db)
     out += _unpaired_findings(new, cand, {j: base[i] for i, j in pairs_idx}, "candidate", tol.new_mode_db)
     return out, pairs, new, missing
+
+
+def _uncertainty_pct(b: dict, c: dict) -> float | None:
+    """The standard error of a pair's shift, % of the baseline frequency, from both runs' fits
+    (their ``freq_sd_hz``, added in quadrature); None when either run does not carry one."""
+    sb, sc = b.get("freq_sd_hz"), c.get("freq_sd_hz")
+    if sb is None or sc is None:
+        return None
+    return 100.0 * math.hypot(sb, sc) / b["freq_hz"]
 
 
 def _unpaired_findings(lone: list[dict], side: list[dict], partner: dict, who: str, strong_db: float) -> list:

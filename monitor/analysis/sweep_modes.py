@@ -1,22 +1,22 @@
 """Frame modes a sweep excites, and the RPM bands where each motor order excites them.
 
-(After the peak search below, neighbouring peaks are fitted together by :func:`refine`, which
-replaces the interpolated frequency and half-power damping where the fit holds.)
-
 Modes: a resonance stays at one frequency while the motor orders move with speed. In every RPM
 bin of the map the spectrum is normalised by its median level (dB), and the bins are combined
 with a 25 % trimmed mean (Tukey's trimmed mean; it ignores the few bins where an order line or a
-dwell tone sits at a frequency), so the order lines smear out and the fixed resonances add up
-(the frame's response to the motors' broadband excitation and to every order that passes). A mode
-is a peak of that fixed-frequency spectrum with a prominence of at least 3 dB that also stands
-``max(3 dB, 6 sigma)`` over the spectrum's 80 Hz running median (sigma the robust spread,
-1.4826 x MAD, of the spectrum about that median: white noise alone never passes), merged
-across axes within 3 %; its main axis is the one with the largest mean PSD there; its frequency
-is refined by parabolic interpolation of the dB peak (Gaussian interpolation; Gasior and
-Gonzalez, CERN AB-Note-2004-021), its damping ratio from the half-power width, zeta = width / (2
-f) (half-power method; any vibration textbook, e.g. Rao,
-Mechanical Vibrations, section 3.5), given only where the peak stands 6 dB or more over the
-running median, is at least 3 frequency bins wide and has no other mode within 12 % (else None).
+dwell tone sits at a frequency), with the order lines 1x..12x masked out first, so the fixed
+resonances add up (the frame's response to the motors' broadband excitation). The peaks of that
+fixed-frequency spectrum with a prominence of at least 3 dB that also stand ``max(3 dB, 6
+sigma)`` over its 80 Hz running median (sigma the robust spread, 1.4826 x MAD, about that median:
+white noise alone never passes), merged across axes within 3 %, start a fit of the modal model of
+output spectra (:mod:`.modal_fit`), which places each mode, finds the modes no peak shows (a
+neighbour in a stronger mode's skirt, a weak mode on another's flank) and gives each a damping
+ratio: withheld (None) for the two modes of a close pair (within 10 %), whose widths trade
+against each other, for a mode whose half-power band spans under 1.5 bins, and for a mode that
+raises the spectrum by under 3 dB (its width is unsure). ``freq_sd_hz`` is the fit's standard
+error of the frequency (a percent or two is the honest spread of a weak, heavily damped mode
+that sits on a stronger one's flank: see DEVELOPERS, "Sweep analysis"). The main axis is
+the one with the largest mean PSD at the mode; ``prominence_db`` how far the mode raises the
+fitted spectrum at its frequency.
 
 Bands: order k of a motor excites a mode of frequency f and damping zeta over the predicted RPM
 band 60 f (1 -+ zeta) / k. The observed band is where the order cut (the map along k n / 60)
@@ -31,8 +31,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage, signal
 
-from ..stray import half_power_width_hz
-from .peak_fit import fit_peaks
+from .modal_fit import select_modes
 from .sweep_map import SweepMap
 
 AXES = ("roll", "pitch", "yaw")
@@ -40,15 +39,12 @@ TRIM = 0.25  #: fraction of RPM bins dropped at each end before averaging
 MIN_PROMINENCE_DB = 3.0
 SIGMA_FACTOR = 6.0
 MERGE_FRACTION = 0.03
-DAMPING_MIN_DB = 6.0
+FIT_MAX_HZ = 1200.0  #: modes are sought up to this (or 0.8 Nyquist): frame modes lie under 600 Hz (common practice)
+RESOLVED_BINS = 1.5  #: a damping ratio is given when the half-power band spans this many bins
+DAMPING_MIN_LIFT_DB = 3.0  #: ... and the mode raises the spectrum this much (a weak hump's width is unsure)
 NEAR_FRACTION = 0.03  #: an order's peak counts for a mode within 3 % of it (a sweep shifts the peak a little)
 REACH_FRACTION = 0.05  #: the observed band stops 5 % from the mode (a neighbour's crossing is not this mode's)
-GROUP_FRACTION = 0.15  #: modes this close are fitted together
-FIT_MARGIN = 0.10
-FIT_SHIFT = 0.02  #: a fitted frequency stays within 2 % of the interpolated peak (about a bin)
-HIDDEN_COST_RATIO = 0.45  #: one more mode must cut the fit's squared residuals to 45 % or less
-HIDDEN_MIN_DB = 15.0  #: and stand this far over the floor  #: the fit spans the group and 10 % either side
-PAIR_FRACTION = 0.12  #: modes closer than this overlap: no damping from their half-power width
+PAIR_FRACTION = 0.10  #: modes closer than this are a close pair: no damping is given for either
 DEFAULT_ZETA = 0.03  #: for a predicted band when a mode's damping could not be measured (common practice)
 
 
@@ -57,13 +53,15 @@ class SweepMode:
     freq_hz: float
     damping_ratio: float | None
     axis: str
-    prominence_db: float  #: over the fixed-frequency spectrum's running median, on the axis it was found on
+    prominence_db: float  #: how far the mode raises the fitted fixed-frequency spectrum at its frequency, dB
     participation: dict = field(default_factory=dict)  #: share of the mean PSD at the mode per axis (sums to 1)
+    freq_sd_hz: float | None = None  #: standard error of the frequency from the fit, Hz
 
     def as_dict(self) -> dict:
         return {"freq_hz": round(self.freq_hz, 2),
                 "damping_ratio": None if self.damping_ratio is None else round(self.damping_ratio, 4),
                 "axis": self.axis, "prominence_db": round(self.prominence_db, 1),
+                "freq_sd_hz": None if self.freq_sd_hz is None else round(self.freq_sd_hz, 2),
                 "participation": {k: round(v, 3) for k, v in self.participation.items()}}
 
 
@@ -130,22 +128,55 @@ def _parabolic(y: np.ndarray, k: int) -> float:
 def find_modes(m: SweepMap, orders: list[float] | None = None, fmin_hz: float = 40.0,
                fmax_hz: float | None = None) -> tuple[list[SweepMode], np.ndarray]:
     """The modes of a sweep map, by frequency, and the fixed-frequency spectrum (bins, 3) dB;
-    ``orders`` (multiples of the shaft rate) are masked out of it (:func:`fixed_spectrum`)."""
+    ``orders`` (multiples of the shaft rate) are masked out of it (:func:`fixed_spectrum`).
+
+    The peaks found start the modal fit (:func:`monitor.analysis.modal_fit.select_modes`), which
+    places them, adds the modes a peak search cannot see (a neighbour in a stronger mode's skirt,
+    a weak mode on another's flank) and gives their damping."""
     if m.rpm.size < 4:
         return [], np.zeros((m.freqs.size, 3))
     s = fixed_spectrum(m, orders)
     f = m.freqs
     bw = m.bin_hz
-    fmax = fmax_hz or 0.8 * f[-1]
+    fmax = min(fmax_hz or 0.8 * f[-1], FIT_MAX_HZ)
     band = (f >= fmin_hz) & (f <= fmax)
+    start = _peaks(s, f, bw, band)
+    if np.count_nonzero(band) < 16:
+        return [], s
+    fb = f[band]
+    fit = select_modes(fb, 10 ** (s[band] / 10.0), bw, start)
+    lift = fit.lift_db()
+    modes: list[SweepMode] = []
+    for i, (fn, zeta) in enumerate(zip(fit.freqs_hz, fit.zetas, strict=True)):
+        fn = float(fn)
+        if not fmin_hz <= fn <= fmax:
+            continue
+        others = [o for j, o in enumerate(fit.freqs_hz) if j != i]
+        # a close pair's widths trade against each other in the fit: no damping is claimed for either
+        alone = all(abs(o - fn) > PAIR_FRACTION * fn for o in others)
+        resolved = 2 * zeta * fn >= RESOLVED_BINS * bw and lift[i].max() >= DAMPING_MIN_LIFT_DB
+        # main axis and participation from the absolute response (the normalised spectra hide scale)
+        p = int(round(fn / bw))
+        level = m.psd[:, max(p - 1, 0):p + 2].max(axis=1).mean(axis=0)  # (3,) mean over RPM bins
+        part = level / level.sum() if level.sum() > 0 else np.full(3, 1 / 3)
+        share = {AXES[i2]: float(part[i2]) for i2 in range(3)}
+        sd = fit.freq_sd_hz[i] if fit.freq_sd_hz is not None else np.nan
+        modes.append(SweepMode(fn, float(zeta) if alone and resolved else None, AXES[int(np.argmax(level))],
+                               float(lift[i].max()), share, float(sd) if np.isfinite(sd) else None))
+    modes.sort(key=lambda md: md.freq_hz)
+    return modes, s
+
+
+def _peaks(s: np.ndarray, f: np.ndarray, bw: float, band: np.ndarray) -> list[tuple[float, float]]:
+    """[(f Hz, zeta 0.03)] the peaks of the fixed spectrum that stand clear of its spread, merged
+    across axes within 3 %: where the modal fit starts."""
     win = max(int(80.0 / bw) | 1, 5)
     cands = []
-    base = np.empty_like(s)
     for ax in range(3):
-        base[:, ax] = ndimage.median_filter(s[:, ax], size=win, mode="nearest")
-        r = (s[:, ax] - base[:, ax])[band]
-        sigma = 1.4826 * float(np.median(np.abs(r - np.median(r))))
-        over = s[:, ax] - base[:, ax]
+        base = ndimage.median_filter(s[:, ax], size=win, mode="nearest")
+        r = (s[:, ax] - base)[band]
+        sigma = 1.4826 * float(np.median(np.abs(r - np.median(r)))) if r.size else 0.0
+        over = s[:, ax] - base
         pk, props = signal.find_peaks(s[:, ax], prominence=MIN_PROMINENCE_DB)
         for p, prom in zip(pk, props["prominences"], strict=True):
             # prominence alone grows with the span searched (noise has 4-6 dB peaks); the height
@@ -153,62 +184,13 @@ def find_modes(m: SweepMap, orders: list[float] | None = None, fmin_hz: float = 
             if band[p] and over[p] >= max(MIN_PROMINENCE_DB, SIGMA_FACTOR * sigma):
                 cands.append((float(prom), int(p), ax))
     cands.sort(reverse=True)
-    modes: list[SweepMode] = []
-    for prom, p, ax in cands:
+    out: list[tuple[float, float]] = []
+    for _, p, ax in cands:
         fk = (p + _parabolic(s[:, ax], p)) * bw
-        if any(abs(fk - md.freq_hz) <= max(MERGE_FRACTION * md.freq_hz, 1.5 * bw) for md in modes):
+        if any(abs(fk - o) <= max(MERGE_FRACTION * o, 1.5 * bw) for o, _ in out):
             continue
-        over = float(s[p, ax] - base[p, ax])
-        zeta = None
-        if over >= DAMPING_MIN_DB:
-            lin = 10 ** ((s[:, ax] - base[:, ax]) / 10.0)
-            width = half_power_width_hz(lin, p, bw)
-            z = width / (2 * fk)
-            # a width under 3 bins is the window's, not the mode's (Hann main lobe: 4 bins)
-            zeta = float(z) if width >= 3 * bw and 0.002 <= z <= 0.2 else None
-        # main axis and participation from the absolute response (the normalised spectra hide scale)
-        level = m.psd[:, max(p - 1, 0):p + 2].max(axis=1).mean(axis=0)  # (3,) mean over RPM bins
-        part = level / level.sum() if level.sum() > 0 else np.full(3, 1 / 3)
-        share = {AXES[i]: float(part[i]) for i in range(3)}
-        modes.append(SweepMode(fk, zeta, AXES[int(np.argmax(level))], prom, share))
-    modes.sort(key=lambda md: md.freq_hz)
-    refine(modes, f, s, band)
-    modes.sort(key=lambda md: md.freq_hz)
-    return modes, s
-
-
-def refine(modes: list[SweepMode], f: np.ndarray, s: np.ndarray, band: np.ndarray) -> None:
-    """Fit each group of neighbouring modes (within 15 % of each other) together on the fixed
-    spectrum, all axes at once (:func:`peak_fit.fit_peaks`): overlapping peaks no longer pull each
-    other's frequency, and each gets a damping ratio of its own. A fit that fails, or a damping
-    ratio at the search's bounds, keeps the interpolated frequency and withholds the damping of a
-    mode with a neighbour within 12 % (a merged pair's width is not one mode's damping)."""
-    groups: list[list[SweepMode]] = []
-    for md in modes:
-        if groups and md.freq_hz <= groups[-1][-1].freq_hz * (1 + GROUP_FRACTION):
-            groups[-1].append(md)
-        else:
-            groups.append([md])
-    power = 10 ** (s / 10.0)
-    for g in groups:
-        lo, hi = g[0].freq_hz * (1 - FIT_MARGIN), g[-1].freq_hz * (1 + FIT_MARGIN)
-        sel = band & (f >= lo) & (f <= hi)
-        fit = None
-        if np.count_nonzero(sel) >= 3 * len(g) + 3:
-            start = [(md.freq_hz, md.damping_ratio or DEFAULT_ZETA) for md in g]
-            fit = fit_peaks(f[sel], power[sel], start, max_shift=FIT_SHIFT)
-            if fit is not None and any(abs(fn - f0) >= 0.95 * FIT_SHIFT * f0 for (fn, _, _), (f0, _) in zip(
-                    fit, start, strict=True)):
-                fit = None  # a frequency driven to its bound: the model does not describe this hump
-        for i, md in enumerate(g):
-            if fit is not None:
-                fn, zeta, _ = fit[i]
-                md.freq_hz = fn
-                md.damping_ratio = zeta if 0.0025 < zeta < 0.19 else None
-            elif len(g) > 1:
-                near = [o for o in g if o is not md and abs(o.freq_hz - md.freq_hz) <= PAIR_FRACTION * md.freq_hz]
-                if near:
-                    md.damping_ratio = None
+        out.append((fk, DEFAULT_ZETA))
+    return sorted(out)
 
 
 def order_bands(m: SweepMap, modes: list[SweepMode], orders: list[tuple[float, str]]) -> list[Band]:

@@ -11,6 +11,7 @@ A TOML file overrides any of the defaults below (every key optional, unknown key
     new_mode_db = 10.0
     missing_mode_db = 10.0
     match_pct = 25.0
+    shift_sigmas = 3.0           # a shift within this many standard errors is not judged (0: always)
 
     [levels]
     rise_warn_db = 6.0
@@ -38,6 +39,9 @@ DEVELOPERS.md "Rebuild check"):
   part that came loose or a structure that changed: a warning. Weaker modes come and go between
   runs of the same frame.
 - Modes further apart than 25 % are never paired: no rebuild moves a mode that far.
+- Each frequency comes with the fit's standard error; a shift within three standard errors of
+  the two runs (added in quadrature) is measurement, not the frame: a weak, heavily damped mode
+  reads up to 1.5 % apart between runs of the same frame here (its standard error 0.5-0.7 %).
 - Levels: 6 dB is twice the RMS rate, 10 dB about three times (common practice for "clearly
   worse" and "do not fly"); the same for the peak where an order crosses a mode.
 - Imbalance: a motor's 1x figure (per RPM squared) grown 1.5x warns, 2x fails: a prop or bell that
@@ -65,6 +69,7 @@ class Tolerances:
     new_mode_db: float = 10.0
     missing_mode_db: float = 10.0
     match_pct: float = 25.0
+    shift_sigmas: float = 3.0
     rise_warn_db: float = 6.0
     rise_fail_db: float = 10.0
     crossing_rise_warn_db: float = 6.0
@@ -78,7 +83,7 @@ class Tolerances:
 
 SECTIONS = {
     "modes": ("drop_warn_pct", "drop_fail_pct", "rise_warn_pct", "rise_fail_pct", "damping_change_pct",
-              "new_mode_db", "missing_mode_db", "match_pct"),
+              "new_mode_db", "missing_mode_db", "match_pct", "shift_sigmas"),
     "levels": ("rise_warn_db", "rise_fail_db", "crossing_rise_warn_db", "crossing_rise_fail_db"),
     "imbalance": ("growth_warn", "growth_fail"),
 }
