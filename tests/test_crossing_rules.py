@@ -378,3 +378,258 @@ def test_the_json_of_events_bands_and_readings_keeps_its_stated_precision():
     bd = b.as_dict()
     assert (bd["mode_hz"], bd["observed_rpm"], bd["predicted_rpm"], bd["peak_db"], bd["t_start_s"], bd["t_end_s"]) \
         == (178.12, [10400.4, 10990.1], [10366.7, 11007.8], -2.35, 1.235, None)
+
+
+# ----------------------------------------------------------------- several groups and motors at once
+# (the rules above on one group; here two groups crossing together, motors that differ, and what
+# each event, band and mode state says about them)
+
+SKIP = pytest.mark.parametrize("skip_held", [True, False])
+
+
+def _two_modes(motors=2, f_b=600.0, skip_held=True):
+    """Mode A (200 Hz, crossed by 1x) and mode B (``f_b``): at 600 Hz the 3x of the same speed
+    crosses it, with a narrower band in speed (16.953 Hz of 3x is 5.651 Hz of 1x)."""
+    w = CrossingWatch(Profile("bench", 3, "clamped", (Mode("arm", FN, ZETA, "pitch"),
+                                                       Mode("plate", f_b, ZETA, "roll"))), motors, FREQS, HOP)
+    w.skip_held = skip_held
+    return w
+
+
+@SKIP
+def test_two_groups_crossing_together_keep_their_own_bands_starts_and_motors(skip_held):
+    w = _two_modes(skip_held=skip_held)
+    f1 = np.arange(FN - 30.0, FN + 30.0 + 0.1, 0.5)  # motor 1 sweeps through both
+    rpm = np.column_stack([60.0 * f1, np.full(f1.size, 5000.0)])  # motor 2 far from both
+    events = _feed(w, rpm)
+    w_b = ZETA * 600.0 + BIN / 2 + 0.005 * 600.0
+    in_a = rpm[np.abs(f1 - FN) <= W, 0]
+    in_b = rpm[np.abs(3 * f1 - 600.0) <= w_b, 0]
+    assert in_b.min() > in_a.min() and in_b.max() < in_a.max()  # B enters later, leaves sooner
+    bands = {b.mode: b for b in w.observed_bands()}
+    assert set(bands) == {"arm", "plate"}
+    a, b = bands["arm"], bands["plate"]
+    assert (a.rpm_low, a.rpm_high) == (in_a.min(), in_a.max()) and (b.rpm_low, b.rpm_high) == (in_b.min(), in_b.max())
+    assert (a.order_name, b.order_name) == ("1x", "blade-pass (3x)") and a.motors == b.motors == (1,)
+    assert a.passages == b.passages == 1
+    first = {e.mode: e.t_s for e in events if e.state == "crossing"}
+    assert (a.t_start_s, b.t_start_s) == (first["arm"], first["plate"])
+    assert [(e.mode, e.order_name) for e in events if e.state == "crossing"] == [("arm", "1x"),
+                                                                                 ("plate", "blade-pass (3x)")]
+
+
+@SKIP
+def test_a_band_grows_only_by_motors_settled_in_it(skip_held):
+    # mode B at 330 Hz, crossed by motor 2's 2x; motor 2 sits unsettled (straying 5 % from its
+    # line) 4 Hz of 2x under B while motor 1 holds A crossing, then settles 3 Hz over it: B's
+    # observed band is the settled speed only
+    w = _two_modes(f_b=330.0, skip_held=skip_held)
+    n1, n2 = 10, 10
+    m1 = np.full(n1 + n2, _rpm(3.0))
+    m2 = np.r_[np.full(n1, 30.0 * (330.0 - 4.0)), np.full(n2, 30.0 * (330.0 + 3.0))]
+    rms = np.column_stack([np.zeros(n1 + n2), np.r_[np.full(n1, 0.05), np.zeros(n2)] * m2])
+    events = _feed(w, np.column_stack([m1, m2]), rms=rms)
+    assert [(e.mode, e.state, e.motor) for e in events] == [("arm", "crossing", 1), ("plate", "crossing", 2)]
+    bands = {b.mode: b for b in w.observed_bands()}
+    assert (bands["plate"].rpm_low, bands["plate"].rpm_high) == (30.0 * 333.0, 30.0 * 333.0)
+    assert bands["plate"].motors == (2,) and bands["arm"].motors == (1,)
+    assert (bands["arm"].rpm_low, bands["arm"].rpm_high) == (_rpm(3.0), _rpm(3.0))
+
+
+@SKIP
+def test_a_motor_stepping_over_a_band_already_crossing_widens_it_to_where_it_met_the_mode(skip_held):
+    # motor 1 holds the group crossing 3 Hz over the mode; motor 2 steps from 10 Hz under to 15 Hz
+    # over it between two frames: the band reaches down to 60 f_n, where motor 2 met the mode
+    w = _watch(2)
+    w.skip_held = skip_held
+    m2 = np.r_[np.full(6, _rpm(-10.0)), np.full(6, _rpm(15.0))]
+    _feed(w, np.column_stack([np.full(12, _rpm(3.0)), m2]))
+    (b,) = w.observed_bands()
+    assert b.rpm_low == pytest.approx(60 * FN, rel=1e-12) and b.rpm_high == _rpm(3.0)
+    assert b.motors == (1, 2)
+
+
+def test_each_passage_of_a_group_keeps_its_own_motors_and_peak():
+    # motor 1 crosses, the group clears; then motor 2 crosses alone
+    w = _watch(2)
+    far = _rpm(60.0)
+    rpm = np.array([[_rpm(0.0), far]] + [[far, far]] * 10 + [[far, _rpm(1.0)]] + [[far, far]] * 10)
+    events = _feed(w, rpm)
+    assert [e.state for e in events] == ["crossing", "clear", "crossing", "clear"]
+    first, second = w.observed_bands()
+    assert (first.motors, second.motors) == ((1,), (2,))
+    assert (second.rpm_low, second.rpm_high) == (_rpm(1.0), _rpm(1.0))
+    assert first.peak_db == second.peak_db == pytest.approx(-40.0)  # the flat 1e-4 (deg/s)^2/Hz
+    assert second.t_start_s == events[2].t_s
+
+
+def test_merged_bands_keep_the_mode_the_order_and_when_they_ended():
+    w = _watch()
+    _, events = _sweep(w, FN - 30.0, FN + 30.0, 0.7)
+    (b,) = w.all_bands()
+    assert (b.mode, b.mode_hz, b.order, b.order_name, b.motors) == ("arm", FN, 1.0, "1x", (1,))
+    assert (b.t_start_s, b.t_end_s, b.passages) == (events[0].t_s, events[1].t_s, 1)
+
+
+def test_events_name_the_mode_and_the_order_and_say_whether_speeds_were_estimated():
+    (e,) = _feed(_watch(), [_rpm(3.0)])
+    assert (e.mode, e.order_name, e.estimated) == ("arm", "1x", False)
+    (e,) = _feed(_watch(), [_rpm(3.0)], est=True)
+    assert e.estimated is True and e.watch_rpm == pytest.approx((60 * (FN - W_EST), 60 * (FN + W_EST)), rel=1e-12)
+    w = _watch()
+    _feed(w, [_rpm(3.0)], est=True)
+    (s,) = w.mode_states()
+    assert s["watch_rpm"] == pytest.approx((60 * (FN - W_EST), 60 * (FN + W_EST)), rel=1e-12)
+    assert w.observed_bands()[0].mode == "arm"
+
+
+def test_the_crossing_event_names_the_motor_that_stepped_over_before_one_inside_the_band():
+    # motor 1 steps over the band between two frames, motor 2 arrives 0.5 Hz from the mode: the
+    # group's crossing is reported at the speed where motor 1 met the mode
+    rpm = np.array([[_rpm(-10.0), _rpm(40.0)], [_rpm(15.0), _rpm(0.5)]])
+    (e,) = _feed(_watch(2), rpm)
+    assert (e.motor, e.rpm, e.order_hz) == (1, pytest.approx(60 * FN, rel=1e-12), FN)
+    assert e.reason.startswith("stepped over the band")
+    assert [(m.motor, m.state) for m in e.motors] == [(1, "crossing"), (2, "crossing")]
+    assert "of M1,2 at" in e.text()  # every motor whose order is in the band
+
+
+def test_nearing_and_clear_events_name_the_motor_that_set_them():
+    # motor 1 steady 30 Hz off; motor 2 closes in from 15 Hz at 600 RPM/s (10 Hz/s of 1x): nearing
+    # for motor 2, 0.8 s from the band. Then both settle outside the margin, motor 2 the nearer
+    # (25 Hz, motor 1 60 Hz): the group clears, naming motor 2
+    rpm = np.array([[_rpm(30.0), _rpm(15.0)]] + [[_rpm(60.0), _rpm(25.0)]] * 10)
+    slope = np.array([[0.0, -600.0]] + [[0.0, 0.0]] * 10)
+    got = _feed(_watch(2), rpm, slope=slope, se=np.zeros_like(slope))
+    assert [(e.state, e.motor) for e in got] == [("nearing", 2), ("clear", 2)]
+    assert got[0].reason == f"closing at 10.0 Hz/s, {(15.0 - W) / 10.0:.1f} s to the band"
+
+
+def test_nearing_raised_by_an_approach_that_stops_holds_for_the_dwell_from_when_it_rose():
+    # the dwell counts from the change, even when the change came with no reason to stay (the
+    # approach stopped at once): late in a session as at its start
+    for t0 in (0.0, 5.0):
+        got = _feed(_watch(), [_rpm(40.0)] * 11, slope=[-6000.0] + [0.0] * 10, se=[0.0] * 11, t0=t0)
+        assert _states(got) == [("nearing", t0), ("clear", round(t0 + 0.5, 6))]
+
+
+def test_mode_states_list_every_motor_in_the_worst_groups_state():
+    w = _watch(2)
+    _feed(w, np.array([[_rpm(-2.0), _rpm(2.0)]]))  # both crossing
+    (s,) = w.mode_states()
+    assert s["state"] == "crossing" and s["motors"] == [1, 2]
+    w = _watch(2)
+    _feed(w, np.array([[_rpm(14.0), _rpm(15.0)]]), slope=np.array([[-600.0, -600.0]]), se=np.zeros((1, 2)))
+    (s,) = w.mode_states()
+    assert s["state"] == "nearing" and s["motors"] == [1, 2]
+    # clear, with both motors inside the margin but neither closing in nor hot: the nearest alone
+    w = _watch(2)
+    _feed(w, np.array([[_rpm(15.0), _rpm(-10.0)]]))
+    (s,) = w.mode_states()
+    assert s["state"] == "clear" and s["motors"] == [2] and s["motor"] == 2
+
+
+def test_mode_states_name_the_order_of_the_worst_group_not_the_nearest_order():
+    # order 1 of motor 1 sits steady 10 Hz off (inside the margin, not closing: its group clear);
+    # order 2 of motor 2 closes in from 15 Hz: that group is nearing, and the mode's state names it
+    rpm = np.array([[_rpm(10.0), 30.0 * (FN + 15.0)]])
+    w = _watch(2)
+    _feed(w, rpm, slope=np.array([[0.0, -600.0]]), se=np.zeros((1, 2)))
+    (s,) = w.mode_states()
+    assert (s["state"], s["order"], s["motor"], s["motors"]) == ("nearing", 2.0, 2, [2])
+
+
+@pytest.mark.parametrize(("zeta", "est", "past", "stays"), [
+    (0.05, False, 2.0, True),  # the exit allowance is zeta f_n / 4 = 2.5 Hz here, not 1.5 u f_n
+    (0.05, False, 3.0, False),
+    (ZETA, True, 2.0, True),  # estimated: 1.5 x 1 % of f_n = 3 Hz
+    (ZETA, True, 3.5, False),
+])
+def test_the_exit_allowance_follows_the_damping_and_the_speed_source(zeta, est, past, stays):
+    w_half = zeta * FN + BIN / 2 + (0.01 if est else 0.005) * FN
+    got = _feed(_watch(zeta=zeta), [_rpm(0.0)] + [_rpm(w_half + past)] * 10, est=est)
+    assert [e.state for e in got] == (["crossing"] if stays else ["crossing", "nearing"])
+
+
+def test_an_order_that_stays_on_one_side_of_a_narrow_band_is_no_step_over():
+    # half-hertz bins and a lightly damped 50 Hz mode: the watch band is +-0.6 Hz; 0.7 then 0.8 Hz
+    # over it is no crossing, nor is anything else short of passing the mode
+    freqs = np.arange(4097) * 0.5
+    w = CrossingWatch(Profile("bench", 3, "clamped", (Mode("m", 50.0, 0.002, "pitch"),)), 1, freqs, HOP)
+    p = np.full((2, freqs.size), 1e-4)
+    assert w.update(np.array([0.0, HOP]), p, np.array([[60 * 50.7], [60 * 50.8]])) == []
+    got = w.update(np.array([2 * HOP, 3 * HOP]), p, np.array([[60 * 49.3], [60 * 49.2]]))
+    assert [e.state for e in got] == ["crossing"] and got[0].reason.startswith("stepped over")
+
+
+def test_a_slope_of_unknown_standard_error_is_no_approach():
+    assert _feed(_watch(), [_rpm(15.0)], slope=[-1000.0], se=[np.nan]) == []
+    assert _states(_feed(_watch(), [_rpm(15.0)], slope=[-1000.0], se=[0.0])) == [("nearing", 0.0)]
+
+
+def test_the_watch_computes_without_floating_point_warnings():
+    # unknown speeds, zero slopes (no closing speed: a division by zero kept out of the result),
+    # an order that does not move between frames, a reading that leaps: none raises when numpy is
+    # told to raise on every floating-point error
+    w = _watch(2)
+    rpm = np.array([[np.nan, _rpm(40.0)], [_rpm(0.0), _rpm(40.0)], [_rpm(0.0), np.nan], [_rpm(-10.0), 0.0],
+                    [_rpm(15.0), _rpm(-50.0)], [_rpm(15.0), _rpm(-50.0)]])
+    slope = np.array([[np.nan, 0.0], [0.0, 0.0], [0.0, np.nan], [0.0, 0.0], [-100.0, 0.0], [0.0, 0.0]])
+    with np.errstate(all="raise"):
+        got = _feed(w, rpm, slope=slope, se=np.zeros_like(slope), rms=np.zeros_like(slope))
+        w.mode_states()
+        w.all_bands()
+    assert got and got[0].state == "crossing"
+
+
+def test_the_level_reads_the_half_power_band_widened_by_half_a_bin_and_the_floor_around_it():
+    # 2 Hz bins; mode a at 120 Hz, zeta 0.125: band 105..135 Hz, read 104..136 Hz (bins 52..68);
+    # mode b at 120 Hz, zeta 0.1: band 108..132 Hz, read 107..133 Hz (bins 54..66); floors over
+    # 72..168 Hz (bins 36..84) outside each band. Every edge falls on a bin (exact binary numbers),
+    # so each comparison is tested at its boundary. The spectrum's dB is the bin number (rising or
+    # falling), so the level is the band's top or bottom bin and the floor the mean bin number
+    freqs = np.arange(1025) * 2.0
+    w = CrossingWatch(Profile("bench", 3, "clamped", (Mode("a", 120.0, 0.125, "pitch"),
+                                                       Mode("b", 120.0, 0.1, "roll"))), 1, freqs, HOP)
+    k = np.arange(freqs.size, dtype=float)
+    up, down = 10 ** (k / 10), 10 ** (-k / 10)
+    level, floor = w.levels(np.stack([up, down]))
+    assert level[0] == pytest.approx([68.0, 66.0]) and level[1] == pytest.approx([-52.0, -54.0])
+    fa = np.r_[36:53, 68:85]  # 72..104 and 136..168 Hz: outside 105..135
+    fb = np.r_[36:54, 67:85]  # 72..106 and 134..168 Hz: outside 108..132
+    assert floor[0] == pytest.approx([fa.mean(), fb.mean()]) and floor[1] == pytest.approx([-fa.mean(), -fb.mean()])
+    # the lowest bin read (72 Hz, a floor bin) very strong: neither band's level sees it
+    spike = np.full(freqs.size, 1e-4)
+    spike[36] = 1e6
+    level, _ = w.levels(spike[None])
+    assert level[0] == pytest.approx([-40.0, -40.0])
+
+
+def test_a_mode_above_the_spectrum_reads_its_top_bin_for_level_and_floor():
+    freqs = np.arange(1025) * 2.0  # up to 2048 Hz
+    w = CrossingWatch(Profile("bench", 3, "clamped", (Mode("high", 4000.0, 0.02, "yaw"),)), 1, freqs, HOP)
+    psd = np.full((1, freqs.size), 1e-4)
+    psd[0, -1] = 1e-2
+    level, floor = w.levels(psd)
+    assert level[0, 0] == pytest.approx(-20.0) and floor[0, 0] == pytest.approx(-20.0)
+
+
+def test_passages_are_cut_at_clear_and_where_a_group_turns_back_inside_its_margin():
+    from monitor.crossing import CrossingEvent, split_passages
+
+    def ev(t, state, previous, mode="arm", order=1.0):
+        return CrossingEvent(t, state, previous, mode, 200.0, order, "1x", 1, 12000.0, 200.0, -40.0, -40.0,
+                             (11760.0, 12240.0), (11600.0, 12400.0))
+
+    a = [ev(0, "nearing", "clear"), ev(1, "crossing", "nearing"), ev(2, "nearing", "crossing"),
+         ev(3, "crossing", "nearing"), ev(4, "nearing", "crossing"), ev(5, "clear", "nearing")]
+    b = [ev(0.5, "crossing", "clear", order=2.0), ev(2.5, "clear", "crossing", order=2.0)]
+    c = [ev(1.5, "nearing", "clear", mode="plate")]
+    merged = sorted(a + b + c, key=lambda e: e.t_s)
+    got = split_passages(["a link message, not an event", *merged, "another"])
+    assert [[(e.mode, e.order, e.t_s) for e in p] for p in got] == [  # in the order they ended
+        [("arm", 2.0, 0.5), ("arm", 2.0, 2.5)],
+        [("arm", 1.0, 0), ("arm", 1.0, 1), ("arm", 1.0, 2)],  # turned back at 3 s: a new passage
+        [("arm", 1.0, 3), ("arm", 1.0, 4), ("arm", 1.0, 5)],
+        [("plate", 1.0, 1.5)],  # still open at the end
+    ]
