@@ -29,7 +29,8 @@ def text_lines(d: dict) -> list[str]:
     out.append(f"modes ({len(d['modes'])}):")
     for m in d["modes"]:
         z = "damping -" if m["damping_ratio"] is None else f"damping {100 * m['damping_ratio']:.1f} %"
-        out.append(f"  {m['freq_hz']:7.1f} Hz  {m['axis']:5}  {z:14}  {m['prominence_db']:.1f} dB prominent")
+        sd = "" if m.get("freq_sd_hz") is None else f" +- {m['freq_sd_hz']:.1f}"
+        out.append(f"  {m['freq_hz']:7.1f} Hz{sd:8}  {m['axis']:5}  {z:14}  {m['prominence_db']:.1f} dB prominent")
     out.append("bands, strongest first (RPM seen / predicted, peak dB re 1 (deg/s)^2/Hz):")
     for b in d["bands"][:12]:
         seen = f"{b['rpm_low']:.0f}-{b['rpm_high']:.0f}" if b["observed"] else "not seen"

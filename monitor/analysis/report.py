@@ -21,6 +21,9 @@ COLOURS = ("#b5562f", "#2f7d6d", "#6b5aa6")  #: roll, pitch, yaw
 AXES = ("roll", "pitch", "yaw")
 
 
+MODE_COLUMNS = ["Hz", "+- Hz (standard error)", "damping", "main axis", "prominence dB"]
+
+
 def _fig_png(fig) -> bytes:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=100)
@@ -139,7 +142,8 @@ def page(a, images: dict[str, bytes], extra_html: str = "") -> str:
         ["motors", d["motors"]], ["blades", d["blades"]],
         ["speeds", "estimated from the spectrum" if d["rpm_estimated"] else "motor telemetry"],
         ["swept", f"{d['rpm_swept'][0]}-{d['rpm_swept'][1]} RPM" if d["rpm_swept"] else "nothing swept"]]
-    modes = [[f"{m['freq_hz']:.1f}", "-" if m["damping_ratio"] is None else f"{100 * m['damping_ratio']:.1f} %",
+    modes = [[f"{m['freq_hz']:.1f}", "-" if m.get("freq_sd_hz") is None else f"{m['freq_sd_hz']:.1f}",
+              "-" if m["damping_ratio"] is None else f"{100 * m['damping_ratio']:.1f} %",
               m["axis"], f"{m['prominence_db']:.1f}"] for m in d["modes"]]
     bands = [[f"{b['mode_hz']:.0f}", b["order_name"], f"{b['rpm_low']:.0f}-{b['rpm_high']:.0f}",
               f"{b['predicted_low']:.0f}-{b['predicted_high']:.0f}", f"{b['peak_db']:.1f}",
@@ -165,7 +169,7 @@ def page(a, images: dict[str, bytes], extra_html: str = "") -> str:
 {f'<ul class="small">{notes}</ul>' if notes else ''}
 <h2>Run</h2>{_table(cond_rows, ["", ""])}
 <h2>Campbell map</h2>{img("campbell.png", "Campbell map")}
-<h2>Frame modes</h2>{_table(modes, ["Hz", "damping", "main axis", "prominence dB"]) if modes else "<p>none found</p>"}
+<h2>Frame modes</h2>{_table(modes, MODE_COLUMNS) if modes else "<p>none found</p>"}
 <h2>Bands (strongest first)</h2>{band_table}
 {img("orders.png", "order levels against RPM")}
 <h2>Averaged spectra</h2>{img("spectra.png", "averaged spectra per axis")}

@@ -347,6 +347,7 @@ def add_parsers(sub, bounded) -> None:
                "A tolerances file (every key optional):\n  [modes]\n  drop_warn_pct = 2.0\n  drop_fail_pct = 3.0\n"
                "  rise_warn_pct = 5.0\n  rise_fail_pct = 0.0      # 0: a rising mode never fails\n"
                "  damping_change_pct = 50.0\n  new_mode_db = 10.0\n  missing_mode_db = 10.0\n  match_pct = 25.0\n"
+               "  shift_sigmas = 3.0       # a shift within 3 standard errors of both fits is not judged\n"
                "  [levels]\n  rise_warn_db = 6.0\n  rise_fail_db = 10.0\n  crossing_rise_warn_db = 6.0\n"
                "  crossing_rise_fail_db = 10.0\n  [imbalance]\n  growth_warn = 1.5\n  growth_fail = 2.0",
         formatter_class=argparse.RawDescriptionHelpFormatter)
