@@ -463,3 +463,43 @@ def test_frames_never_join_samples_across_a_lost_block():
     np.testing.assert_allclose(holed[2, 1:-1, 0], ref[1:-1], rtol=1e-3, atol=1e-9 * ref.max())
     _, sparse = psd_frames(grid, fs, n, n // 2, np.arange(t.size) % 3 == 0)
     assert np.all(np.isnan(sparse))  # under half real: no frame
+
+
+# --- airframes the analysis was never tuned on -------------------------------------------------
+
+@pytest.fixture(scope="module")
+def invented_runs(tmp_path_factory):
+    from simulators.device import DeviceOptions
+    from simulators.faults import FaultPlan
+    from simulators.invented import random_scenario
+    from simulators.stream import SimStream, StreamOptions
+    from tests.sim_helpers import record_capture
+
+    out = []
+    for seed in (1001, 1002, 1003, 1004):
+        sc = random_scenario(seed)
+        path = tmp_path_factory.mktemp("invented") / f"{seed}.spinrec"
+        stream = SimStream(sc, DeviceOptions(stream_at_boot=True, seed=1), FaultPlan(), StreamOptions(realtime=False))
+        record_capture(path, stream, sc.script_duration_s, port=f"sim://{sc.name}")
+        out.append((sc, analyse(load_record(path), sc.motors.blades)))
+    return out
+
+
+def test_airframes_never_seen_keep_the_promises(invented_runs):
+    # four random airframes (simulators.invented; seeds not used while the analysis was developed):
+    # the crossed modes found within their tolerance, and few modes more than 3 % from every true
+    # one. Measured on 100 such airframes (benchmarks/analysis_accuracy.py): 96 % found on the 40
+    # the analysis was tuned on, 88 % on the 60 it never saw (most misses inside clusters of modes
+    # closer than their half-power bands, which read as fewer modes); these four: 19 of 21, and
+    # two modes off (one of a 70/75/95 Hz cluster read 5 % high, one no mode at all)
+    crossed = found = false = 0
+    for sc, a in invented_runs:
+        lo, hi = float(a.map.rpm.min()), float(a.map.rpm.max())
+        got = [md.freq_hz for md in a.modes]
+        for tm in sc.modes:
+            if any(lo <= 60 * tm.freq_hz / k <= hi for k, _ in orders_followed(sc.motors.blades)):
+                crossed += 1
+                found += any(abs(f / tm.freq_hz - 1) <= _tolerance(tm) for f in got)
+        false += sum(all(abs(f / t.freq_hz - 1) > 0.03 for t in sc.modes) for f in got)
+    assert crossed >= 15 and found >= 0.85 * crossed, (found, crossed)
+    assert false <= 2

@@ -419,19 +419,21 @@ def test_two_groups_crossing_together_keep_their_own_bands_starts_and_motors(ski
 
 
 @SKIP
-def test_a_band_grows_only_by_motors_settled_in_it(skip_held):
+@pytest.mark.parametrize("unsettled_hz,settled_hz", [(-4.0, 3.0), (4.0, -3.0)])
+def test_a_band_grows_only_by_motors_settled_in_it(skip_held, unsettled_hz, settled_hz):
     # mode B at 330 Hz, crossed by motor 2's 2x; motor 2 sits unsettled (straying 5 % from its
-    # line) 4 Hz of 2x under B while motor 1 holds A crossing, then settles 3 Hz over it: B's
-    # observed band is the settled speed only
+    # line) on one side of B while motor 1 holds A crossing, then settles on the other side: B's
+    # observed band is the settled speed only, whichever side the unsettled one was
     w = _two_modes(f_b=330.0, skip_held=skip_held)
     n1, n2 = 10, 10
     m1 = np.full(n1 + n2, _rpm(3.0))
-    m2 = np.r_[np.full(n1, 30.0 * (330.0 - 4.0)), np.full(n2, 30.0 * (330.0 + 3.0))]
+    m2 = np.r_[np.full(n1, 30.0 * (330.0 + unsettled_hz)), np.full(n2, 30.0 * (330.0 + settled_hz))]
     rms = np.column_stack([np.zeros(n1 + n2), np.r_[np.full(n1, 0.05), np.zeros(n2)] * m2])
     events = _feed(w, np.column_stack([m1, m2]), rms=rms)
     assert [(e.mode, e.state, e.motor) for e in events] == [("arm", "crossing", 1), ("plate", "crossing", 2)]
     bands = {b.mode: b for b in w.observed_bands()}
-    assert (bands["plate"].rpm_low, bands["plate"].rpm_high) == (30.0 * 333.0, 30.0 * 333.0)
+    settled = 30.0 * (330.0 + settled_hz)
+    assert (bands["plate"].rpm_low, bands["plate"].rpm_high) == (settled, settled)
     assert bands["plate"].motors == (2,) and bands["arm"].motors == (1,)
     assert (bands["arm"].rpm_low, bands["arm"].rpm_high) == (_rpm(3.0), _rpm(3.0))
 
@@ -461,6 +463,23 @@ def test_each_passage_of_a_group_keeps_its_own_motors_and_peak():
     assert (second.rpm_low, second.rpm_high) == (_rpm(1.0), _rpm(1.0))
     assert first.peak_db == second.peak_db == pytest.approx(-40.0)  # the flat 1e-4 (deg/s)^2/Hz
     assert second.t_start_s == events[2].t_s
+
+
+def test_merged_bands_join_the_motors_of_every_passage_and_stay_open_while_one_is():
+    w = _watch(2)
+    far = _rpm(60.0)
+    rpm = np.array([[_rpm(0.0), far]] + [[far, far]] * 10 + [[far, _rpm(1.0)]] * 3)
+    _feed(w, rpm)  # motor 1's passage closed, motor 2's still crossing at the end
+    (b,) = w.all_bands()
+    assert b.motors == (1, 2) and b.passages == 2 and np.isnan(b.t_end_s)
+    assert (b.rpm_low, b.rpm_high) == (_rpm(0.0), _rpm(1.0))
+
+
+def test_the_band_helpers_default_to_telemetry_speeds():
+    assert crossing.watch_half_band(FN, ZETA, BIN) == pytest.approx(W, rel=1e-12)
+    assert crossing.watch_half_band(FN, ZETA, BIN, True) == pytest.approx(W_EST, rel=1e-12)
+    assert crossing.exit_allowance(FN, ZETA) == pytest.approx(ALLOW, rel=1e-12)
+    assert crossing.exit_allowance(FN, ZETA, True) == pytest.approx(1.5 * 0.01 * FN, rel=1e-12)
 
 
 def test_merged_bands_keep_the_mode_the_order_and_when_they_ended():
