@@ -1,6 +1,7 @@
 """The one-line bugs an audit once slipped past the tests, applied again to a copy of the tree:
 each must now fail the named tests. Not part of CI (a few minutes); run it after touching the
-crossing watch, the assembler or the stray search.
+crossing watch, the assembler or the stray search. Runs pytest in one process (``-n 0``): under
+xdist a stopped run exits 2, which is no proof a test failed.
 
     python3 benchmarks/one_line_bugs.py
 """
@@ -48,9 +49,9 @@ def main() -> int:
                 continue
             f.write_text(text.replace(old, bug))
             for t in tests:
-                p = subprocess.run([sys.executable, "-m", "pytest", "-q", "-x", "-p", "no:cacheprovider", t],
+                p = subprocess.run([sys.executable, "-m", "pytest", "-q", "-n", "0", "-p", "no:cacheprovider", t],
                                    cwd=dst, capture_output=True, text=True)
-                caught = p.returncode == 1
+                caught = p.returncode == 1  # tests failed (2 would be an interrupted or broken run)
                 missed += not caught
                 print(f"{'caught' if caught else 'MISSED'}: {what} -- {t.split('::')[1]}")
     return 1 if missed else 0
