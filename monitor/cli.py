@@ -266,8 +266,9 @@ def _add_tap(sub) -> None:
         help="frame modes (frequency, damping, axis) from taps: live on a port, or in a capture or CSV",
         description="On a live port, ask for each tap and judge each decay as it comes (motors must be still; "
                     "on sim:// ports spinrig taps the simulated frame). In a capture or CSV made with the motors "
-                    "stopped, find the taps. Identify the frame's modes in each free decay (matrix pencil), combine "
-                    "the taps, and optionally write them as a profile for watch --profile.",
+                    "stopped, find the taps. Identify the frame's modes in each free decay (matrix pencil, "
+                    "then a least-squares fit of each decay with every mode found), combine the taps, and "
+                    "optionally write them as a profile for watch --profile.",
         epilog="examples:\n  spinrig tap /dev/ttyACM0 --profile frame.toml   (guided: 5 taps)\n"
                "  spinrig tap 'sim://quillback7?script=0' --taps 3\n"
                "  spinrig tap taps.spinrec\n  spinrig tap taps.spinrec --profile frame.toml\n"

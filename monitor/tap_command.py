@@ -10,7 +10,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .analysis.taps import AXES, analyse_taps, combine, find_taps
+from .analysis.taps import AXES, analyse_taps, find_taps, identify_modes
 from .profile import Mode, Profile, ProfileError, load_profile
 
 
@@ -174,7 +174,7 @@ def run(args) -> int:
     taps = list(taps)
     if args.taps:
         taps = taps[: args.taps]
-    modes = combine(taps)
+    taps, modes = identify_modes(taps)
     if args.json:
         print(json.dumps({"kind": "tap", "source": src, "taps": [t.as_dict() for t in taps],
                           "modes": [m.as_dict() for m in modes]}, sort_keys=True))

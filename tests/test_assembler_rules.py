@@ -279,3 +279,64 @@ def test_a_motor_window_with_no_readings_is_unknown_in_every_field():
     empty = RpmTrack(1)
     m, la, th, k = empty.window(np.array([0.0]), np.array([1.0]))
     assert np.isnan(m).all() and np.isnan(la).all() and np.isnan(th).all() and not k.any()
+
+
+# ----------------------------------------------------------------- the telemetry trend
+
+@settings(max_examples=examples(150), deadline=None)
+@given(st.lists(st.integers(0, 60), min_size=0, max_size=25, unique=True),
+       st.lists(st.integers(0, 70), min_size=1, max_size=8), st.integers(2, 8),
+       st.floats(-40.0, 40.0), st.integers(0, 2**31))
+def test_the_telemetry_trend_is_ordinary_least_squares_over_each_window(ticks, ends, span_ticks, slope, seed):
+    """Each motor's line over the readings in [t1 - span, t1) is scipy.stats.linregress of those
+    readings: the speed the line gives at t1 (never under 0), its slope, the slope's standard
+    error and the residual RMS; with one or two readings the newest one and no slope; with none,
+    nothing. Times on a 10 ms grid, so that a reading falls exactly on a window's start (kept)
+    or its end (left out); speeds near zero, so that the floor at 0 matters."""
+    from monitor.assembler import RpmTrack
+
+    dt = 0.01
+    t = np.sort(np.array(ticks, dtype=float)) * dt
+    rng = np.random.default_rng(seed)
+    rpm = np.stack([50.0 + slope * t + rng.normal(0, 5.0, t.size), 3000.0 - 100 * t + rng.normal(0, 1, t.size)],
+                   axis=1)
+    tr = RpmTrack(2, capacity=100)
+    if t.size:
+        tr.add(MotorUpdate(t, rpm, np.zeros_like(rpm), np.ones(rpm.shape, bool)))
+    t1 = np.array(ends) * dt
+    span = span_ticks * dt
+    fit, sl, se, rms = tr.trend(list(t1), span_s=span)  # a list, as any sequence of times may be
+    for out in (fit, sl, se, rms):
+        assert out.shape == (t1.size, 2) and out.dtype == np.float64
+    for i in range(len(ends)):
+        sel = np.flatnonzero((t >= t1[i] - span) & (t < t1[i]))  # as the times compare in floats
+        if sel.size == 0:
+            assert np.isnan(fit[i]).all() and np.isnan(sl[i]).all()
+            continue
+        if sel.size < 3:
+            np.testing.assert_array_equal(fit[i], rpm[sel[-1]])
+            assert np.isnan(sl[i]).all() and np.isnan(se[i]).all() and np.isnan(rms[i]).all()
+            continue
+        for mo in range(2):
+            ref = scipy.stats.linregress(t[sel], rpm[sel, mo])
+            assert sl[i, mo] == pytest.approx(ref.slope, rel=1e-7, abs=1e-7)
+            assert se[i, mo] == pytest.approx(ref.stderr, rel=1e-6, abs=1e-9)
+            assert fit[i, mo] == pytest.approx(max(ref.intercept + ref.slope * t1[i], 0.0), rel=1e-9, abs=1e-7)
+            res = rpm[sel, mo] - (ref.intercept + ref.slope * t[sel])
+            assert rms[i, mo] == pytest.approx(np.sqrt(res @ res / (sel.size - 2)), rel=1e-6, abs=1e-9)
+
+
+def test_a_trend_over_readings_at_one_instant_is_the_newest_reading_and_warns_nothing():
+    import warnings
+
+    from monitor.assembler import RpmTrack
+
+    tr = RpmTrack(1, capacity=10)
+    tr.add(MotorUpdate(np.array([1.0, 1.0, 1.0]), np.array([[100.0], [120.0], [90.0]]), np.zeros((3, 1)),
+                       np.ones((3, 1), bool)))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        fit, sl, se, rms = tr.trend(np.array([1.5, 2.0]), span_s=1.0)
+    assert fit[:, 0].tolist() == [90.0, 90.0] and np.isnan(sl).all() and np.isnan(se).all() and np.isnan(rms).all()
+    assert [a.shape for a in RpmTrack(1).trend(np.array([1.0]))] == [(1, 1)] * 4
+    assert [a.shape for a in tr.trend(np.zeros(0))] == [(0, 1)] * 4

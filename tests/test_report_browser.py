@@ -69,12 +69,12 @@ def test_the_tap_report_loads_every_image_within_1280_pixels(tmp_path):
 
     tap_capture(tmp_path / "taps.spinrec", "brisling5", taps=2)
     from monitor.analysis.tap_report import write_tap_report
-    from monitor.analysis.taps import analyse_taps, combine
+    from monitor.analysis.taps import analyse_taps, identify_modes
     from monitor.tap_command import _record
 
     x, fs, fsd = _record(str(tmp_path / "taps.spinrec"))
-    taps = analyse_taps(x, fs, fsd)
-    page = write_tap_report("taps.spinrec", taps, combine(taps), tmp_path / "out")
+    taps, modes = identify_modes(analyse_taps(x, fs, fsd))
+    page = write_tap_report("taps.spinrec", taps, modes, tmp_path / "out")
     result = page_check(page)
     assert result["images"] == 2 and result["bad"] == 0 and result["over"] == 0 and result["scroll"] <= 1280
 

@@ -13,7 +13,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from monitor.analysis.pencil import identify
-from monitor.analysis.taps import analyse_taps, combine, half_power_zeta
+from monitor.analysis.taps import analyse_taps, combine, half_power_zeta, identify_modes
 from monitor.profile import load_profile
 from tests.conftest import examples
 from tests.sim_helpers import tap_capture
@@ -81,7 +81,9 @@ def test_taps_are_found_and_each_decay_is_judged():
     x, fs = _taps_record()
     taps = analyse_taps(x, fs, full_scale_dps=2000.0)
     assert [round(t.t_s, 2) for t in taps] == [1.0, 2.2, 3.4] and all(t.usable for t in taps)
-    (m,) = combine(taps)
+    (first,) = combine(taps)  # the pencil's poles, combined
+    refined, (m,) = identify_modes(taps)  # ... and fitted to every decay
+    assert [len(t.poles) for t in refined] == [1, 1, 1] and abs(first.freq_hz / 180.0 - 1) <= 0.003
     assert m.freq_hz == pytest.approx(180.0, rel=0.003) and m.damping_ratio == pytest.approx(0.03, rel=0.1)
     assert m.taps == 3 and m.axis == "pitch" and m.participation[1] > 0.9 and m.half_power_agrees
 
@@ -139,20 +141,25 @@ def tap_runs(tmp_path_factory):
 
 @pytest.mark.parametrize("name", SCENARIOS)
 def test_tap_modes_of_each_scenario(tap_runs, name):
+    # every mode within 0.3 % in frequency and 15 % in damping, and nothing else; the pencil
+    # alone placed the Brisling 5's 505 Hz mode 0.4 to 0.7 % low and never found the Pipit 3's
+    # weak 7 % mode (gone within ten periods, an eighth of its neighbours). That one is found now,
+    # but its five-tap mean scatters by about 0.25 % (11 seeds: -0.53 to +0.33 %, 9 within 0.3 %):
+    # it is held to 0.5 % and to three standard errors of its own taps' spread
     from monitor.tap_command import _record
 
     sc, f = tap_runs[name]
     x, fs, fsd = _record(str(f))
-    modes = combine(analyse_taps(x, fs, fsd))
+    modes = identify_modes(analyse_taps(x, fs, fsd))[1]
+    assert len(modes) == len(sc.modes), (name, [m.freq_hz for m in modes])
     for true in sc.modes:
         best = min(modes, key=lambda m: abs(m.freq_hz - true.freq_hz))
         if true.damping_ratio > 0.06:
-            continue  # see below: the 7 % mode dies out within 10 periods
-        assert abs(best.freq_hz / true.freq_hz - 1) <= 0.005, (name, true, best)
+            err = abs(best.freq_hz - true.freq_hz)
+            assert err <= 0.005 * true.freq_hz and err <= 3 * best.freq_sd_hz / np.sqrt(best.taps), (name, best)
+        else:
+            assert abs(best.freq_hz / true.freq_hz - 1) <= 0.003, (name, true, best)
         assert abs(best.damping_ratio / true.damping_ratio - 1) <= 0.15, (name, true, best)
-    # nothing that is not a true mode
-    for m in modes:
-        assert min(abs(m.freq_hz / t.freq_hz - 1) for t in sc.modes) <= 0.005, (name, m)
 
 
 def test_spinrig_tap_writes_a_profile_the_watch_uses(tap_runs, tmp_path):

@@ -12,6 +12,10 @@ much longer than its time constant the power spectrum of one mode is a Lorentzia
 2 zeta f_n at half power (Ewins, Modal Testing, 2000, sec. 3.2; Inman, Engineering Vibration).
 Taps are combined per mode: mean and spread (sample standard deviation) of frequency and damping
 over the taps that found it, and the axis participation (mean share of each axis' amplitude).
+The pencil's modes, combined over the taps, are then the start of a least-squares fit of every
+tap's decay at the gyro's own rate (:mod:`.decay_fit`: the maximum-likelihood estimate under white
+noise, all modes at once, so two overlapping modes no longer pull each other), and the fitted
+poles are combined again (:func:`identify_modes`).
 """
 
 from __future__ import annotations
@@ -20,8 +24,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import signal
+from threadpoolctl import threadpool_limits
 
 from ..stray import half_power_width_hz
+from .decay_fit import fit_decay_growing
 from .pencil import Pole, identify
 
 ANALYSIS_HZ = 2000.0  #: decays are decimated to about this rate (modes of interest lie below 800 Hz)
@@ -35,6 +41,8 @@ TAP_REARM = 5.0  #: the next tap counts only once the power fell under this many
 TAP_SPACING_S = 0.5  #: peaks closer than this are one tap (or a double tap)
 DOUBLE_SHARE = 0.3  #: a second impulse this large (share of the first) inside a decay spoils it
 RISE = 2.5  #: ... when the level also jumps this many times over the 50 ms before it
+FIT_MIN_S = 0.1  #: the least-squares fit of a decay covers at least this long, s (and 5 time constants)
+TREND_HZ = 12.0  #: slow rigid-body motion under this is fitted as a trend beside the modes (fmin 30 Hz)
 AXES = ("roll", "pitch", "yaw")
 
 
@@ -48,6 +56,8 @@ class TapDecay:
     half_power_zeta: list[float | None] = field(default_factory=list)  #: per pole, from the spectrum
     decay: np.ndarray | None = field(default=None, repr=False)  #: (n, 3) deg/s at ``rate_hz``
     rate_hz: float = 0.0
+    raw: np.ndarray | None = field(default=None, repr=False)  #: (n, 3) deg/s at ``raw_hz``, less the gyro's offset
+    raw_hz: float = 0.0  #: the gyro's own rate
 
     def as_dict(self) -> dict:
         return {"tap": self.index, "t_s": round(self.t_s, 4), "usable": self.usable, "why": self.why,
@@ -182,6 +192,7 @@ def analyse_taps(x: np.ndarray, fs: float, full_scale_dps: float | None = None,
         dec = signal.decimate(ext, q, ftype="fir", axis=0, zero_phase=True) if q > 1 else ext
         dec = dec[int(np.ceil(pad / q)):]
         tap.decay = dec
+        tap.raw, tap.raw_hz = x[start:end] - bias, float(fs)
         top = min(fmax, 0.4 * rate)
         poles = identify(dec, 1.0 / rate, fmin=fmin, fmax=top)
         # heavily damped or high modes have died out after a few tens of ms: look at the start alone
@@ -226,3 +237,51 @@ def combine(taps: list[TapDecay], f_tol: float = 0.01, min_share: float = 0.5) -
                            float(z.std(ddof=1)) if z.size > 1 else 0.0, len(c), AXES[int(np.argmax(part))],
                            tuple(float(v) for v in part), agrees))
     return out
+
+
+def refine_taps(taps: list[TapDecay], modes: list[TapMode], min_snr: float = 3.0, fmin: float = 30.0,
+                fmax: float = 800.0) -> list[TapDecay]:
+    """Each usable tap again, its poles now the ``modes`` fitted to its decay at the gyro's own
+    rate (:func:`.decay_fit.fit_decay`, started from each mode's frequency and damping). A mode
+    is kept in a tap when its fit did not stop at the search's reach and it starts at least
+    ``min_snr`` times over the RMS of what the fit leaves on some axis (the pencil's own rule)."""
+    if not modes:
+        return taps
+    out = []
+    for tap in taps:
+        if not tap.usable or tap.raw is None or tap.raw.shape[0] < 8:
+            out.append(tap)
+            continue
+        # past five time constants of the slowest mode a decay holds under 0.3 % of what it
+        # tells of that mode (the integral of t^2 e^(-2t/tau) beyond 5 tau): fit no further
+        tau = max(1.0 / (2 * np.pi * m.freq_hz * m.damping_ratio) for m in modes)
+        n = min(tap.raw.shape[0], max(int(FIT_MIN_S * tap.raw_hz), int(5 * tau * tap.raw_hz)))
+        with threadpool_limits(limits=1, user_api="blas"):  # small matrices: threads only cost
+            fit, _ = fit_decay_growing(tap.raw[:n], 1.0 / tap.raw_hz, [m.freq_hz for m in modes],
+                                       [m.damping_ratio for m in modes], trend_hz=TREND_HZ, fmin=fmin,
+                                       fmax=min(fmax, 0.4 * tap.raw_hz), min_snr=min_snr)
+        noise = np.maximum(np.array(fit.residual_rms), 1e-30)
+        poles = []
+        for f in fit.modes:
+            if not f.at_bound and np.max(np.array(f.amplitudes) / noise) >= min_snr:
+                poles.append(Pole(f.freq_hz, f.damping_ratio, f.amplitudes))
+            else:  # the fit could not place it: the pencil's own pole, if this tap had one
+                own = [p for p in tap.poles if abs(p.freq_hz - f.freq_hz) <= 0.01 * f.freq_hz]
+                poles.extend(own[:1])
+        poles.sort(key=lambda p: p.freq_hz)
+        out.append(TapDecay(tap.index, tap.t_s, True, "", poles,
+                            [half_power_zeta(tap.decay, tap.rate_hz, p.freq_hz) for p in poles],
+                            tap.decay, tap.rate_hz, tap.raw, tap.raw_hz))
+    return out
+
+
+def identify_modes(taps: list[TapDecay], f_tol: float = 0.01,
+                   min_share: float = 0.5) -> tuple[list[TapDecay], list[TapMode]]:
+    """The frame's modes from analysed taps: the pencil's poles combined (:func:`combine`), fitted
+    to every tap's decay (:func:`refine_taps`) and combined again. Returns the taps with their
+    fitted poles, and the modes."""
+    first = combine(taps, f_tol, min_share)
+    if not first:
+        return taps, first
+    refined = refine_taps(taps, first)
+    return refined, combine(refined, f_tol, min_share)
