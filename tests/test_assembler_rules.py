@@ -340,3 +340,52 @@ def test_a_trend_over_readings_at_one_instant_is_the_newest_reading_and_warns_no
     assert fit[:, 0].tolist() == [90.0, 90.0] and np.isnan(sl).all() and np.isnan(se).all() and np.isnan(rms).all()
     assert [a.shape for a in RpmTrack(1).trend(np.array([1.0]))] == [(1, 1)] * 4
     assert [a.shape for a in tr.trend(np.zeros(0))] == [(0, 1)] * 4
+
+
+@settings(max_examples=examples(100), deadline=None)
+@given(st.lists(st.tuples(st.integers(1, 60), st.floats(0.001, 0.05)), min_size=10, max_size=40),
+       st.integers(4, 40), st.floats(0.02, 1.0))
+def test_the_telemetry_store_holds_the_newest_readings_within_its_limits(blocks, capacity, keep_s):
+    """Readings are held as a suffix of everything fed: an update larger than the capacity keeps
+    its newest ``capacity`` rows; when the store (capacity + 256 rows) would overflow, the rows
+    older than keep_s before the update's newest reading are dropped, and more if needed to stay
+    within the capacity. Throttle and validity are kept with each reading."""
+    from monitor.assembler import RpmTrack
+
+    tr = RpmTrack(2, capacity=capacity, keep_s=keep_s)
+    held: list[tuple] = []
+    t = 0.0
+    serial = 0
+    for k, step in blocks:
+        ts = t + step * np.arange(1, k + 1)
+        t = float(ts[-1])
+        ids = serial + np.arange(k)
+        serial += k
+        rows = [(float(ts[i]), float(ids[i]), float(ids[i]) * 0.5, bool(ids[i] % 3)) for i in range(k)]
+        tr.add(MotorUpdate(ts, np.stack([ids, -ids], axis=1).astype(float),
+                           np.stack([ids * 0.5, ids * 0.5], axis=1), np.stack([ids % 3 > 0] * 2, axis=1)))
+        rows = rows[-capacity:]
+        if len(held) + len(rows) > capacity + 256:
+            old = sum(1 for r in held if r[0] < t - keep_s)
+            held = held[max(old, len(held) + len(rows) - capacity):]
+        held = held + rows
+        got = tr._store[: tr._n]
+        assert got.shape[0] == len(held)
+        np.testing.assert_array_equal(got[:, 0], [r[0] for r in held])
+        np.testing.assert_array_equal(got[:, 1], [r[1] for r in held])
+        np.testing.assert_array_equal(got[:, 2], [-r[1] for r in held])
+        np.testing.assert_array_equal(got[:, 3], [r[2] for r in held])
+        np.testing.assert_array_equal(got[:, 5], [0.0 if r[3] else 1.0 for r in held])  # stored as "not valid"
+
+
+def test_estimate_trend_never_reads_under_zero_and_a_missing_estimate_is_not_kept():
+    tr = EstimateTrend(span_s=1.0)
+    for ti, r in ((0.0, 3.0), (0.1, 2.0), (0.2, 1.1), (0.3, 0.5)):
+        fit, sl, _, _ = tr.add(ti, r)
+    ref = scipy.stats.linregress([0.0, 0.1, 0.2, 0.3], [3.0, 2.0, 1.1, 0.5])
+    assert fit == pytest.approx(ref.intercept + ref.slope * 0.3) and 0.0 < fit < 1.0  # under 1 RPM, not floored
+    fit, _, _, _ = tr.add(0.4, 0.0)
+    assert fit == 0.0  # the line runs under zero there
+    assert np.isnan(tr.add(0.5, np.nan)[0])
+    assert tr.add(0.6, 0.0)[1] == pytest.approx(scipy.stats.linregress([0.0, 0.1, 0.2, 0.3, 0.4, 0.6],
+                                                                        [3.0, 2.0, 1.1, 0.5, 0.0, 0.0]).slope)
