@@ -93,6 +93,20 @@ def test_the_estimate_is_refined_to_a_fraction_of_a_bin_on_a_hann_periodogram(f0
     assert abs(got / 60.0 - f0) < 0.1 * bin_hz
 
 
+@pytest.mark.parametrize("f0", [101.3, 137.77, 180.6])
+def test_under_a_flat_top_window_the_refinement_uses_that_window(f0):
+    # the same tones under scipy's flat-top window, as the engine may use: the estimator told
+    # the window refines within a tenth of a bin (measured 0.006 to 0.013); read with Hann's
+    # formula the same peaks are 0.22 to 0.41 bins off
+    fs, n = 8000.0, 2048
+    t = np.arange(n) / fs
+    x = 3.0 * np.sin(2 * np.pi * f0 * t + 0.3) + 2.0 * np.sin(2 * np.pi * 2 * f0 * t + 1.1)
+    x = x + np.random.default_rng(int(f0 * 100)).normal(0, 0.05, n)
+    freqs, p = scipy.signal.periodogram(x, fs, window="flattop")
+    got = RpmEstimator(freqs, blades=2, window="flattop").estimate(p)
+    assert abs(got / 60.0 - f0) < 0.1 * fs / n
+
+
 # ----------------------------------------------------------------- orders
 
 
