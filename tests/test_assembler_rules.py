@@ -389,3 +389,21 @@ def test_estimate_trend_never_reads_under_zero_and_a_missing_estimate_is_not_kep
     assert np.isnan(tr.add(0.5, np.nan)[0])
     assert tr.add(0.6, 0.0)[1] == pytest.approx(scipy.stats.linregress([0.0, 0.1, 0.2, 0.3, 0.4, 0.6],
                                                                         [3.0, 2.0, 1.1, 0.5, 0.0, 0.0]).slope)
+
+
+def test_every_reboot_and_every_break_is_counted_where_it_happened():
+    # two announced reboots (new boot ids in a status), then a counter going back unannounced:
+    # three reboots, three breaks, each at the time of the last sample before it
+    def status(boot, seq):
+        return fp.encode_frame(fp.DeviceStatus(0, boot, 0, 0, 0, 0, 0, 0, 1), seq)
+
+    data = (b"".join(_frames(_blocks(5, seq0=1000))) + status(5, 30) + b"".join(_frames(_blocks(3), seq0=31))
+            + status(6, 40) + b"".join(_frames(_blocks(4), seq0=41)) + b"".join(_frames(_blocks(2), seq0=50)))
+    asm, out = _run((data, 0.0))
+    gaps = [g for g in out if isinstance(g, Gap)]
+    assert asm.stats.reboots == 3 and [g.reason for g in gaps] == ["device reboot"] * 3
+    assert asm.stats.gaps >= 3 and asm.stats.samples_lost == 0
+    samples = _samples(out)
+    ends = [s.t0_s + (s.dps.shape[0] - 1) / FS for s in samples]
+    for g in gaps:  # each break sits at the end of a sample block seen before it
+        assert any(abs(g.t_s - e) < 1e-9 or abs(g.t_s - (e + 1 / FS)) < 1e-9 for e in ends), g
