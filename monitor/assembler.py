@@ -131,13 +131,15 @@ class Assembler:
         self._scale = 1.0
         self._signs = np.ones(3, dtype=np.float32)
         self._fs = 0.0
-        self._pending_break: tuple[str, int] | None = ("start", 0)
+        #: the next block opens a segment (at the start, after a reconnect or a reboot; the Gap, if any,
+        #: went out when the break was learnt)
+        self._break_pending = True
 
     # ---------------------------------------------------------------- public
 
     def mark_reconnect(self, host_s: float | None = None) -> list:
         """The link dropped and came back: the next samples open a new segment."""
-        self._pending_break = ("reconnect", 0)
+        self._break_pending = True
         self._expect_seq = None
         return [Gap(self._last_sample_s, "reconnect")]
 
@@ -191,7 +193,7 @@ class Assembler:
             elapsed = max(0.0, host_s - self._last_host_s)
         self._tb = _TimeBase(ref_s=self._last_sample_s + elapsed)
         self._expect_seq = None
-        self._pending_break = ("device reboot", 0)
+        self._break_pending = True
         self._drift = _DriftFit()
         self._last_dev_s = None
         out.append(Gap(self._last_sample_s, "device reboot"))
@@ -210,15 +212,15 @@ class Assembler:
         dps *= self._signs
         times = self._tb.to_session(batch.t_us)
         breaks = set(np.flatnonzero(diff != 0).tolist())
-        if self._pending_break is not None:
+        if self._break_pending:
             breaks.add(0)
         bounds = sorted(breaks | {0, len(seq)})
         fill_max = max(1, int(BRIDGE_MAX_S * self._fs))
         for a, b in zip(bounds[:-1], bounds[1:], strict=True):
             block = dps[starts[a] : starts[b]]
             if a in breaks:
-                if self._pending_break is not None:
-                    self._pending_break = None  # its Gap went out when the break was learnt
+                if self._break_pending:
+                    self._break_pending = False
                     self._new_segment(float(times[a]))
                 elif diff[a] >= HALF:  # the counter went backwards: a reboot nobody announced
                     self.stats.reboots += 1
@@ -270,14 +272,14 @@ class Assembler:
         if self.info is None or mb.erpm.shape[1] == 0:
             return
         t = self._tb.to_session(mb.t_us)
-        pp = max(1, self.info.pole_pairs)
+        pp = self.info.pole_pairs  # >= 1: the decoder rejects a DEVICE_INFO with 0
         valid = (mb.flags & int(fp.MotorFlags.TELEMETRY_VALID)) != 0
         out.append(MotorUpdate(t, mb.erpm / pp, mb.throttle / fp.THROTTLE_FULL, valid))
 
     def _motor(self, ms: fp.MotorState, out: list) -> None:
         if self.info is None or not ms.motors:
             return
-        pp = max(1, self.info.pole_pairs)
+        pp = self.info.pole_pairs  # >= 1: the decoder rejects a DEVICE_INFO with 0
         t = self._tb.to_session(np.array([ms.t_us]))
         if self._tb.ref_us is None:
             return

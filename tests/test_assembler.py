@@ -204,3 +204,25 @@ def test_the_same_description_twice_is_one_device_change():
     assert [type(o).__name__ for o in out].count("DeviceChange") == 1
     out = asm.feed([fp.Received(2, fp.DeviceInfo(boot_id=5, motor_count=6))])  # a real change
     assert [type(o).__name__ for o in out].count("DeviceChange") == 1
+
+
+@pytest.mark.parametrize("merge", [True, False])
+@pytest.mark.parametrize("pole_pairs", [1, 2, 12])
+@pytest.mark.parametrize("motor_count", [1, 3])
+def test_rpm_is_erpm_over_the_pole_pairs_for_any_motor_count(merge, pole_pairs, motor_count):
+    # eRPM = RPM x pole pairs (electric machines texts; recalled); one pole pair means eRPM is RPM,
+    # and a single-motor device is still a device with motors
+    info = fp.DeviceInfo(sens_num=164, sens_den=10, pole_pairs=pole_pairs, motor_count=motor_count,
+                         gyro_rate_mhz=8_000_000)
+    erpm = [12_000 * (k + 1) for k in range(motor_count)]
+
+    def motors(t):
+        return fp.MotorState(t, tuple(fp.MotorEntry(e, 3000, 1) for e in erpm))
+
+    dec, asm = fp.StreamDecoder(merge=merge), Assembler()
+    out = asm.feed(dec.feed(stream(blocks(3), info=info, motors=motors)), host_s=0.0)
+    ups = [o for o in out if isinstance(o, MotorUpdate)]
+    rpm = np.concatenate([u.rpm for u in ups])
+    assert rpm.shape == (3, motor_count)
+    assert (rpm == np.array(erpm, float) / pole_pairs).all()
+    assert np.concatenate([u.throttle for u in ups]).tolist() == [[0.3] * motor_count] * 3
