@@ -320,6 +320,10 @@ class _DriftFit:
 
     BIN_S = 1.0
     MAX_HULL = 4096  #: corners kept at most (a straight-line envelope keeps a handful)
+    #: a corner this close to the chord of its neighbours is dropped: host times near 1e6 s carry
+    #: rounding of about 1e-10 s, device times are whole microseconds, so 1 ns tells rounding from
+    #: latency; it moves a slope over an edge of a second or more by 0.001 ppm at most
+    ON_CHORD_S = 1e-9
 
     def __init__(self):
         self.ref: tuple[float, float] | None = None
@@ -351,7 +355,9 @@ class _DriftFit:
         # Andrew's monotone chain, upper half: drop corners that are not right turns
         while len(h) >= 2:
             (x1, y1), (x2, y2) = h[-2], h[-1]
-            if (x2 - x1) * (off - y1) - (y2 - y1) * (x - x1) >= 0:
+            # the middle corner's height over the chord from its left neighbour to the new point
+            # is -cross / (x - x1); within ON_CHORD_S it is no corner (rounding, not latency)
+            if (x2 - x1) * (off - y1) - (y2 - y1) * (x - x1) >= -self.ON_CHORD_S * (x - x1):
                 h.pop()
             else:
                 break

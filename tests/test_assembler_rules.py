@@ -198,10 +198,12 @@ def test_a_stream_faster_than_real_time_has_no_drift_figure():
 
 
 @settings(max_examples=examples(100), deadline=None)
-@given(st.floats(-500.0, 500.0), st.floats(-5.0, 5.0), st.integers(0, 2**31))
-def test_the_drift_is_the_slope_of_the_upper_envelope(ppm, offset, seed):
+@given(st.floats(-500.0, 500.0), st.floats(-5.0, 5.0), st.integers(0, 2**31),
+       st.sampled_from([1000.0, 86_400.0, 1_000_000.0]))
+def test_the_drift_is_the_slope_of_the_upper_envelope(ppm, offset, seed, host0):
     # offsets on a line minus any non-negative latency, the least latency (0) reached at least
-    # once in every second: the estimate is the line's slope, whatever the latencies above it
+    # once in every second: the estimate is the line's slope, whatever the latencies above it;
+    # host clocks read up to 1e6 s (days of uptime), whose rounding must not keep false corners
     rng = np.random.default_rng(seed)
     fit = _DriftFit()
     for sec in range(30):
@@ -209,8 +211,8 @@ def test_the_drift_is_the_slope_of_the_upper_envelope(ppm, offset, seed):
         lat = rng.exponential(0.01, 5)
         lat[rng.integers(5)] = 0.0
         for x, d in zip(xs, lat, strict=True):
-            fit.add(1000.0 + x, 1000.0 + offset + x * (1 + ppm * 1e-6) - d)
-    fit.add(1031.0, 1031.0 + offset + 31.0 * (1 + ppm * 1e-6))  # closes the last second
+            fit.add(host0 + x, host0 + offset + x * (1 + ppm * 1e-6) - d)
+    fit.add(host0 + 31.0, host0 + offset + 31.0 * (1 + ppm * 1e-6))  # closes the last second
     assert fit.ppm() == pytest.approx(ppm, abs=1e-3)
     assert len(fit.hull) < 10  # a straight envelope keeps a handful of corners
 
