@@ -233,7 +233,7 @@ class Assembler:
                     lost = int(diff[a])
                     self.stats.samples_lost += lost
                     if lost <= fill_max and self._segment >= 0:
-                        self._fill(lost, block[0] if block.shape[0] else self._last_dps, out)
+                        self._fill(lost, block[0], out)  # a block holds 1 or more samples (SPEC)
                     else:
                         out.append(Gap(self._last_sample_s, "samples lost", lost))
                         self._new_segment(float(times[a]))
@@ -242,21 +242,19 @@ class Assembler:
             self._seg_index += block.shape[0]
             self.stats.samples += block.shape[0]
             self._last_sample_s = self._seg_t0 + self._seg_index / self._fs
-            if block.shape[0]:
-                self._last_dps = block[-1].copy()
+            self._last_dps = block[-1].copy()
         self._expect_seq = int((seq[-1] + counts[-1]) % U32)
         self._last_dev_s = float(times[-1])
 
     def _fill(self, n: int, after: np.ndarray, out: list) -> None:
         """A short hole of ``n`` samples: filled in place, linear from the last sample before it to
         the first after it, marked not valid, so the series (and its spectra) go on."""
-        ramp = (np.arange(1, n + 1, dtype=np.float32) / np.float32(n + 1))[:, None]
+        ramp = (np.arange(1, n + 1) / (n + 1))[:, None]
         filled = self._last_dps[None, :] + (after[None, :] - self._last_dps[None, :]) * ramp
         t0 = self._seg_t0 + self._seg_index / self._fs
         out.append(Samples(self._segment, self._seg_index, t0, self._fs, filled.astype(np.float32),
                            np.zeros(n, bool)))
-        self._seg_index += n
-        self._last_sample_s = self._seg_t0 + self._seg_index / self._fs
+        self._seg_index += n  # the block after the hole follows at once, and sets _last_sample_s
         self.stats.holes_bridged += 1
         self.stats.samples_filled += n
 
@@ -388,9 +386,8 @@ class RpmTrack:
     (and any beyond ``capacity``) are dropped; memory is fixed at creation.
     """
 
-    def __init__(self, motors: int, capacity: int = 20_000, rate_hz: float = 500.0, keep_s: float = 4.0):
+    def __init__(self, motors: int, capacity: int = 20_000, keep_s: float = 4.0):
         self.motors = motors
-        self.rate_hz = rate_hz
         self.capacity = capacity
         self.keep_s = keep_s
         self._store = np.zeros((capacity + 256, 1 + 3 * motors))  # rows [0, _n) are held

@@ -151,7 +151,7 @@ class Engine:
         self.stray = StrayPeakFinder(self.profile, freqs, self.spec.nperseg / fs) if self.config.stray_peaks else None
         self.estimator = RpmEstimator(freqs, self.profile.blades, window=self.config.window)
         rate = max(1.0, float(info.motor_state_rate_hz))
-        self.rpm_track = RpmTrack(motors, capacity=max(1000, int(rate * 20)), rate_hz=rate)
+        self.rpm_track = RpmTrack(motors, capacity=max(1000, int(rate * 20)))
         self._ema_alpha = 1.0 - np.exp(-hop_s / self.config.ema_tau_s)
         self._stray_every = max(1, int(round(0.2 / hop_s)))  # the stray search runs at about 5 Hz
         self._reset_views()

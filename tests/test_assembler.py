@@ -156,7 +156,7 @@ def test_any_chunking_gives_the_same_samples_and_motor_readings(cuts):
 
 
 def test_rpm_track_window_means():
-    tr = RpmTrack(2, capacity=100, rate_hz=100)
+    tr = RpmTrack(2, capacity=100)
     t = np.arange(50) / 100.0
     rpm = np.stack([np.arange(50) * 10.0, np.full(50, 7.0)], axis=1)
     tr.add(MotorUpdate(t, rpm, np.zeros((50, 2)), np.ones((50, 2), bool)))
@@ -171,7 +171,7 @@ def test_rpm_track_window_equals_the_definition_across_store_compaction():
     # many small updates push the store past its capacity; every window must still equal the
     # plain mean over the readings with t0 <= t < t1 (held ones: the last keep_s / capacity)
     rng = np.random.default_rng(3)
-    tr = RpmTrack(3, capacity=300, rate_hz=500, keep_s=0.5)
+    tr = RpmTrack(3, capacity=300, keep_s=0.5)
     t_all, r_all, v_all = [], [], []
     t = 0.0
     for _ in range(200):

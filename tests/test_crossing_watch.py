@@ -72,7 +72,7 @@ def judge(profile, t, rpm, hop=0.064, batch=3, psd=None):
     """Feed the readings and frames ending every ``hop`` s to a watch, ``batch`` frames a call."""
     motors = rpm.shape[1]
     watch = CrossingWatch(profile, motors, FREQS, hop)
-    track = RpmTrack(motors, capacity=int(READ_HZ * 8), rate_hz=READ_HZ)
+    track = RpmTrack(motors, capacity=int(READ_HZ * 8))
     frames = np.arange(1.0, t[-1], hop)
     events, truth = [], []
     k = 0
@@ -249,7 +249,7 @@ def test_the_fitted_speed_stays_within_its_stated_uncertainty():
         errs, slopes = [], []
         for seed in range(4):
             t, rpm = speeds(lambda tt, r=rate: 8000.0 + r * tt, 30.0, 1, 0.0, 0.002, seed)
-            track = RpmTrack(1, capacity=20000, rate_hz=READ_HZ)
+            track = RpmTrack(1, capacity=20000)
             track.add(MotorUpdate(t, rpm, np.zeros_like(rpm), np.ones(rpm.shape, bool)))
             frames = np.arange(1.0, 29.0, 0.064)
             fit, slope, se, rms = track.trend(frames)
