@@ -589,3 +589,12 @@ def test_a_trend_ending_under_one_rpm_is_not_floored_above_zero():
     tr.add(MotorUpdate(t, (2.0 - 5.0 * t)[:, None], np.zeros((4, 1)), np.ones((4, 1), bool)))
     fit, slope, _, _ = tr.trend(np.array([0.31]))
     assert slope[0, 0] == pytest.approx(-5.0) and fit[0, 0] == pytest.approx(2.0 - 5.0 * 0.31)  # 0.45 RPM
+
+
+def test_only_each_second_s_highest_offset_counts():
+    # two reads a second, the earlier one the least delayed: only it is kept (one point a second),
+    # so the mean host time is that of the maxima alone
+    pts = [(0.0, -5e-3)] + [(k + dx, 1e-4 * (k + dx) - lat) for k in range(10) for dx, lat in ((0.3, 0.0), (0.6, 3e-3))]
+    fit = _drift_fit(pts)
+    assert fit.n == 10 and fit.sx == pytest.approx(sum(k + 0.3 for k in range(10)))
+    assert fit.ppm() == pytest.approx(100.0, abs=1e-6)
